@@ -245,13 +245,16 @@ def _extremum(plo, dlo, phi, va, vb, h, w, n, vturn, g):
 
 
 @_jit
-def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest):
-    """Earliest diving arrival with p in (plo, phi); returns (p, T), T = inf if none."""
+def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest, pg, fg, dg, tg):
+    """Earliest diving arrival with p in (plo, phi) if earlier than ``tbest``.
+
+    X(p) is sampled at N_SCAN + 2 points (Chebyshev spacing, both ends); every
+    sign change of X - x is polished, and where dX/dp changes sign between
+    samples the extremum is located so that a hidden pair of roots is found
+    too. Returns (p, T); T = tbest and p = nan if nothing earlier exists.
+    """
     best_p = np.nan
     best_t = tbest
-    pg = np.empty(N_SCAN + 2)
-    fg = np.empty(N_SCAN + 2)
-    dg = np.empty(N_SCAN + 2)
     for i in range(N_SCAN + 2):
         if i == 0:
             s = 0.0
@@ -264,16 +267,21 @@ def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest):
             fg[i] = np.inf
             dg[i] = -np.inf
             pg[i] = 0.0
+            tg[i] = np.inf
             continue
         pg[i] = pi
         xs, ts, ds = _diving_eval(pi, va, vb, h, w, n, vturn, g)
         fg[i] = xs - x
         dg[i] = ds
+        tg[i] = ts - pi * xs  # tau(p), which falls as p grows
         if np.isnan(fg[i]):
             fg[i] = np.inf
     for i in range(N_SCAN + 1):
         f0 = fg[i]
         f1 = fg[i + 1]
+        # any root in [p_i, p_i+1] has T >= tau(p_i+1) + p_i x
+        if np.isfinite(tg[i + 1]) and tg[i + 1] + pg[i] * x >= best_t:
+            continue
         if f0 == 0.0:
             xs, ts, ds = _diving_eval(pg[i], va, vb, h, w, n, vturn, g)
             if ts < best_t:
@@ -306,7 +314,8 @@ def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest):
 # One pick through one model
 # ----------------------------------------------------------------------------
 @_jit
-def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx):
+def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
+          c_layer, c_bound, c_plo, c_phi, pg, fg, dg, tg):
     """First arrival / named branch for one pick. Returns (T, p, code, interface, deepest)."""
     nl = ztop.shape[0]
     zmin = min(zs, zr)
@@ -423,8 +432,10 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx):
                 best_code = 1
                 best_k = 0
                 best_deep = zmax
-    # ---- diving rays turning inside gradient layers at or below zmax
+    # ---- diving rays turning inside gradient layers at or below zmax:
+    # branch and bound, the layer with the lowest lower bound on T first
     if mode == 0 or mode == 1:
+        nc = 0
         for l in range(lb, nl):
             if grad[l] <= 0.0:
                 continue
@@ -441,12 +452,31 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx):
             plo = 1.0 / vend if np.isfinite(vend) else 0.0
             if not (phi > plo):
                 continue
-            # prune: tau falls with p, so T >= tau(phi) + plo x
-            if np.isfinite(best_t) and va[idx] >= vabove:
+            # tau falls with p, so T >= tau(phi) + plo x
+            bound = plo * x
+            if va[idx] >= vabove:
                 xs0, ts0, ds0 = _diving_eval(phi, va, vb, h, w, idx, va[idx], grad[l])
-                if np.isfinite(ts0) and (ts0 - phi * xs0) + plo * x >= best_t:
-                    continue
-            p, t = _earliest_diving(x, plo, phi, va, vb, h, w, idx, va[idx], grad[l], best_t)
+                if np.isfinite(ts0):
+                    bound += ts0 - phi * xs0
+            c_layer[nc] = l
+            c_bound[nc] = bound
+            c_plo[nc] = plo
+            c_phi[nc] = phi
+            nc += 1
+        for _ in range(nc):
+            ib = -1
+            lowest = best_t
+            for c in range(nc):
+                if c_bound[c] < lowest:
+                    lowest = c_bound[c]
+                    ib = c
+            if ib < 0:
+                break
+            c_bound[ib] = np.inf
+            l = c_layer[ib]
+            idx = n_u + (l - lb)
+            p, t = _earliest_diving(x, c_plo[ib], c_phi[ib], va, vb, h, w, idx, va[idx], grad[l], best_t,
+                                    pg, fg, dg, tg)
             if t < best_t:
                 best_t = t
                 best_p = p
@@ -483,7 +513,8 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx):
 @_jit
 def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant):
     nm, nl = vtop.shape
-    npk = x.shape[0]
+    npk = x.shape[1]
+    gx = x.shape[0] > 1
     time = np.empty((nm, npk))
     pout = np.empty((nm, npk))
     code = np.zeros((nm, npk), dtype=np.int8)
@@ -495,10 +526,19 @@ def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant):
     h = np.empty(nmax)
     w = np.empty(nmax)
     vmx = np.empty(nmax)
+    c_layer = np.empty(nl, dtype=np.int64)
+    c_bound = np.empty(nl)
+    c_plo = np.empty(nl)
+    c_phi = np.empty(nl)
+    pg = np.empty(N_SCAN + 2)
+    fg = np.empty(N_SCAN + 2)
+    dg = np.empty(N_SCAN + 2)
+    tg = np.empty(N_SCAN + 2)
     for m in range(nm):
+        g = m if gx else 0
         for j in range(npk):
-            t, p, c, k, d = _pick(ztop[m], vtop[m], grad[m], x[j], zs[j], zr[j], mode, kwant,
-                                  va, vb, h, w, vmx)
+            t, p, c, k, d = _pick(ztop[m], vtop[m], grad[m], x[g, j], zs[g, j], zr[g, j], mode, kwant,
+                                  va, vb, h, w, vmx, c_layer, c_bound, c_plo, c_phi, pg, fg, dg, tg)
             time[m, j] = t
             pout[m, j] = p
             code[m, j] = c
@@ -585,27 +625,39 @@ def _kernel_surface_constant(thick, vel, x):
 # ----------------------------------------------------------------------------
 # Public interface
 # ----------------------------------------------------------------------------
-def _geometry(distance, source_depth, receiver_depth):
-    x = np.atleast_1d(np.asarray(distance, dtype=float))
-    if x.ndim != 1:
-        raise ValueError(f"distance: expected a 1-D array of picks, got shape {x.shape}")
-    n = x.shape[0]
-    out = [x]
-    for name, val in (("source_depth", source_depth), ("receiver_depth", receiver_depth)):
-        arr = np.asarray(val, dtype=float)
+def _geometry(distance, source_depth, receiver_depth, n_models=None):
+    """Validate pick geometry; returns three (G, picks) arrays, G = 1 or n_models."""
+    arrays = {}
+    for name, val in (("distance", distance), ("source_depth", source_depth), ("receiver_depth", receiver_depth)):
+        arrays[name] = np.asarray(val, dtype=float)
+    x = arrays["distance"]
+    if x.ndim == 0:
+        x = x[None]
+    if x.ndim not in (1, 2):
+        raise ValueError(f"distance: expected shape (picks,) or (models, picks), got {x.shape}")
+    n = x.shape[-1]
+    rows = {a.shape[0] for a in arrays.values() if a.ndim == 2}
+    if len(rows) > 1 or (rows and n_models is not None and rows != {n_models} and rows != {1}):
+        raise ValueError(f"geometry: per-model geometry must have {n_models} rows, got {sorted(rows)}")
+    g = rows.pop() if rows else 1
+    out = []
+    for name, arr in arrays.items():
         if arr.ndim == 0:
-            arr = np.full(n, float(arr))
-        if arr.shape != (n,):
-            raise ValueError(f"{name}: expected shape ({n},) to match distance, got {arr.shape}")
-        out.append(arr)
-    for name, arr in zip(("distance", "source_depth", "receiver_depth"), out):
+            arr = np.full((1, n), float(arr))
+        elif arr.ndim == 1:
+            arr = arr[None, :]
+        if arr.shape[-1] != n:
+            raise ValueError(f"{name}: expected {n} picks to match distance, got shape {arr.shape}")
+        arr = np.broadcast_to(arr, (g, n))
         bad = ~np.isfinite(arr)
         if bad.any():
-            raise ValueError(f"{name}: pick {int(np.argmax(bad))} is {arr[bad][0]} (not a finite number)")
-    if (x < 0).any():
-        j = int(np.argmax(x < 0))
-        raise ValueError(f"distance: pick {j} has negative distance {x[j]:g}")
-    return [np.ascontiguousarray(a) for a in out]
+            j = int(np.argwhere(bad)[0, 1])
+            raise ValueError(f"{name}: pick {j} is {arr[bad][0]} (not a finite number)")
+        out.append(np.ascontiguousarray(arr))
+    if (out[0] < 0).any():
+        j = int(np.argwhere(out[0] < 0)[0, 1])
+        raise ValueError(f"distance: pick {j} has negative distance {out[0][out[0] < 0][0]:g}")
+    return out
 
 
 def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, receiver_depth=0.0, *,
@@ -618,9 +670,10 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
         Batch of layered models (lengths and velocities in one unit system).
     wave : {'P', 'S'}
         Wave type; S uses the S velocities and cannot cross fluid layers.
-    distance : array (picks,)
-        Horizontal source-receiver distance [length], >= 0.
-    source_depth, receiver_depth : float or array (picks,)
+    distance : array (picks,) or (models, picks)
+        Horizontal source-receiver distance [length], >= 0. A leading model
+        axis gives every model its own geometry (sampled event positions).
+    source_depth, receiver_depth : float or array (picks,) or (models, picks)
         Depths below the datum [length]; negative above it (the top layer
         extends upward).
     branch : {'first', 'direct', 'head', 'reflection'}
@@ -649,12 +702,12 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
         if interface is not None:
             raise ValueError(f"interface: only head and reflection branches take an interface (branch {branch!r})")
         kwant = -1
-    x, zs, zr = _geometry(distance, source_depth, receiver_depth)
+    x, zs, zr = _geometry(distance, source_depth, receiver_depth, model.n_models)
     vtop, grad = model.velocity(wave)
     vtop = np.ascontiguousarray(vtop)
     grad = np.ascontiguousarray(grad)
-    if mode == 0 and not grad.any() and not zs.any() and not zr.any():
-        out = _kernel_surface_constant(np.ascontiguousarray(model.thickness), vtop, x)
+    if mode == 0 and x.shape[0] == 1 and not grad.any() and not zs.any() and not zr.any():
+        out = _kernel_surface_constant(np.ascontiguousarray(model.thickness), vtop, x[0])
     else:
         ztop = np.ascontiguousarray(model.layer_tops)
         out = _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant)
@@ -667,10 +720,11 @@ def predict(model: LayerModel, wave, branch, interface, distance, source_depth, 
 
     Picks sharing (wave, branch, interface) are computed in one batched call.
     ``wave`` holds 'P'/'S', ``branch`` 'first'/'direct'/'head'/'reflection',
-    ``interface`` ints (0 where not applicable).
+    ``interface`` ints (0 where not applicable); geometry arrays are (picks,)
+    or (models, picks).
     """
-    x, zs, zr = _geometry(distance, source_depth, receiver_depth)
-    n = x.shape[0]
+    x, zs, zr = _geometry(distance, source_depth, receiver_depth, model.n_models)
+    n = x.shape[1]
     wave = np.broadcast_to(np.asarray(wave), (n,))
     branch = np.broadcast_to(np.asarray(branch), (n,))
     interface = np.broadcast_to(np.asarray(interface, dtype=int), (n,))
@@ -681,7 +735,7 @@ def predict(model: LayerModel, wave, branch, interface, distance, source_depth, 
         sel = np.flatnonzero(keys == key)
         w, b, k = key.split("|")
         k = int(k)
-        arr = travel_times(model, w, x[sel], zs[sel], zr[sel], branch=b,
+        arr = travel_times(model, w, x[:, sel], zs[:, sel], zr[:, sel], branch=b,
                            interface=k if b in ("head", "reflection") else None)
         out[:, sel] = arr.time
     return out
