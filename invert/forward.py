@@ -128,17 +128,6 @@ def _sum_pieces(p, vref, qref2, va, vb, h, w, n):
     return xs, ts, ds
 
 
-@_jit
-def _turn(p, va, g):
-    """X, T, dX/dp from velocity va down to the turning point (v = 1/p), gradient g > 0."""
-    pv = p * va
-    qa = np.sqrt((1.0 - pv) * (1.0 + pv))
-    x = qa / (p * g)
-    t = np.log1p((1.0 + qa - pv) / pv) / g
-    d = -1.0 / (qa * p * p * g)
-    return x, t, d
-
-
 # ----------------------------------------------------------------------------
 # Root finding
 # ----------------------------------------------------------------------------
@@ -197,59 +186,75 @@ def _solve_monotone(x, vmax, va, vb, h, w, n):
 
 
 @_jit
-def _diving_eval(p, va, vb, h, w, n, vturn, g):
-    """X, T, dX/dp of a diving ray: pieces 0..n-1 then a turn (weight 2) in a layer."""
-    xs, ts, ds = _sum_pieces(p, 1.0 / p, 0.0, va, vb, h, w, n)
-    xt, tt, dt = _turn(p, vturn, g)
-    return xs + 2.0 * xt, ts + 2.0 * tt, ds + 2.0 * dt
+def _diving_eval(qr, vref, va, vb, h, w, n, vturn, g):
+    """X, T, dX/dqr of a diving ray: pieces 0..n-1, then a turn (weight 2) in a layer.
+
+    The ray is labelled by ``qr`` = sqrt(1 - p^2 vref^2), its vertical
+    cosine at the reference velocity ``vref`` (the fastest velocity above the
+    turning point); p = sqrt(1 - qr^2) / vref. Near grazing this keeps every
+    q = sqrt(1 - p^2 v^2) accurate, where computing from p would cancel.
+    The turning layer starts at velocity ``vturn`` with gradient g > 0 and
+    contributes X = qa / (p g), T = acosh(1 / (p vturn)) / g.
+    """
+    sp = np.sqrt((1.0 - qr) * (1.0 + qr))
+    p = sp / vref
+    xs, ts, ds = _sum_pieces(p, vref, qr * qr, va, vb, h, w, n)
+    r = vturn / vref
+    qa = np.sqrt((1.0 - r) * (1.0 + r) + r * r * qr * qr)
+    pv = r * sp
+    xt = qa / (p * g)
+    tt = np.log1p((qa + qa * qa / (1.0 + pv)) / pv) / g
+    dxdp = ds - 2.0 / (qa * p * p * g)
+    return xs + 2.0 * xt, ts + 2.0 * tt, dxdp * (-qr / (vref * vref * p))
 
 
 @_jit
-def _polish_diving(x, plo, flo, phi, fhi, va, vb, h, w, n, vturn, g):
-    """Root of X(p) = x in the bracket [plo, phi] (f = X - x changes sign)."""
-    p = 0.5 * (plo + phi)
+def _polish_diving(x, qlo, flo, qhi, fhi, vref, va, vb, h, w, n, vturn, g):
+    """Root of X = x for qr in the bracket [qlo, qhi] (f = X - x changes sign); returns (p, T)."""
+    q = 0.5 * (qlo + qhi)
     for _ in range(200):
-        xs, ts, ds = _diving_eval(p, va, vb, h, w, n, vturn, g)
+        xs, ts, ds = _diving_eval(q, vref, va, vb, h, w, n, vturn, g)
         f = xs - x
         if f == 0.0:
             break
         if (f > 0.0) == (fhi > 0.0):
-            phi = p
+            qhi = q
             fhi = f
         else:
-            plo = p
+            qlo = q
             flo = f
-        pn = p - f / ds
-        if not (pn > min(plo, phi) and pn < max(plo, phi)) or not np.isfinite(pn):
-            pn = 0.5 * (plo + phi)
-        if abs(pn - p) <= 1e-15 * p or abs(phi - plo) <= 1e-15 * p:
-            p = pn
+        qn = q - f / ds
+        if not (qn > min(qlo, qhi) and qn < max(qlo, qhi)) or not np.isfinite(qn):
+            qn = 0.5 * (qlo + qhi)
+        if abs(qn - q) <= 1e-15 * q or abs(qhi - qlo) <= 1e-15 * q:
+            q = qn
             break
-        p = pn
-    xs, ts, ds = _diving_eval(p, va, vb, h, w, n, vturn, g)
+        q = qn
+    xs, ts, ds = _diving_eval(q, vref, va, vb, h, w, n, vturn, g)
+    p = np.sqrt((1.0 - q) * (1.0 + q)) / vref
     return p, ts + p * (x - xs)
 
 
 @_jit
-def _extremum(plo, dlo, phi, va, vb, h, w, n, vturn, g):
-    """Ray parameter where dX/dp changes sign between plo and phi (bisection)."""
+def _extremum(qlo, dlo, qhi, vref, va, vb, h, w, n, vturn, g):
+    """qr where dX/dqr changes sign between qlo and qhi (bisection)."""
     for _ in range(60):
-        pm = 0.5 * (plo + phi)
-        xs, ts, dm = _diving_eval(pm, va, vb, h, w, n, vturn, g)
+        qm = 0.5 * (qlo + qhi)
+        xs, ts, dm = _diving_eval(qm, vref, va, vb, h, w, n, vturn, g)
         if (dm > 0.0) == (dlo > 0.0):
-            plo = pm
+            qlo = qm
             dlo = dm
         else:
-            phi = pm
-    return 0.5 * (plo + phi)
+            qhi = qm
+    return 0.5 * (qlo + qhi)
 
 
 @_jit
-def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest, pg, fg, dg, tg):
-    """Earliest diving arrival with p in (plo, phi) if earlier than ``tbest``.
+def _earliest_diving(x, qtop, vref, va, vb, h, w, n, vturn, g, tbest, qg, fg, dg, tg):
+    """Earliest diving arrival with qr in (0, qtop) if earlier than ``tbest``.
 
-    X(p) is sampled at N_SCAN + 2 points (Chebyshev spacing, both ends); every
-    sign change of X - x is polished, and where dX/dp changes sign between
+    X is sampled at N_SCAN + 2 points (Chebyshev spacing, both ends); every
+    sign change of X - x is polished, and where dX/dqr changes sign between
     samples the extremum is located so that a hidden pair of roots is found
     too. Returns (p, T); T = tbest and p = nan if nothing earlier exists.
     """
@@ -262,48 +267,49 @@ def _earliest_diving(x, plo, phi, va, vb, h, w, n, vturn, g, tbest, pg, fg, dg, 
             s = 1.0
         else:
             s = 0.5 * (1.0 - np.cos(np.pi * (i - 0.5) / N_SCAN))
-        pi = plo + (phi - plo) * s
-        if pi <= 0.0:
+        qi = qtop * s
+        qg[i] = qi
+        if qi >= 1.0:  # p = 0: a ray into a gradient half-space never returns
             fg[i] = np.inf
-            dg[i] = -np.inf
-            pg[i] = 0.0
-            tg[i] = np.inf
+            dg[i] = np.nan
+            tg[i] = 0.0
             continue
-        pg[i] = pi
-        xs, ts, ds = _diving_eval(pi, va, vb, h, w, n, vturn, g)
+        xs, ts, ds = _diving_eval(qi, vref, va, vb, h, w, n, vturn, g)
+        pi = np.sqrt((1.0 - qi) * (1.0 + qi)) / vref
         fg[i] = xs - x
         dg[i] = ds
-        tg[i] = ts - pi * xs  # tau(p), which falls as p grows
+        tg[i] = ts - pi * xs  # tau, which grows with qr (falls with p)
         if np.isnan(fg[i]):
             fg[i] = np.inf
     for i in range(N_SCAN + 1):
         f0 = fg[i]
         f1 = fg[i + 1]
-        # any root in [p_i, p_i+1] has T >= tau(p_i+1) + p_i x
-        if np.isfinite(tg[i + 1]) and tg[i + 1] + pg[i] * x >= best_t:
+        # any root in [q_i, q_i+1] has T >= tau(q_i) + p(q_i+1) x
+        p1 = np.sqrt((1.0 - qg[i + 1]) * (1.0 + qg[i + 1])) / vref
+        if np.isfinite(tg[i]) and tg[i] + p1 * x >= best_t:
             continue
         if f0 == 0.0:
-            xs, ts, ds = _diving_eval(pg[i], va, vb, h, w, n, vturn, g)
+            xs, ts, ds = _diving_eval(qg[i], vref, va, vb, h, w, n, vturn, g)
             if ts < best_t:
                 best_t = ts
-                best_p = pg[i]
+                best_p = np.sqrt((1.0 - qg[i]) * (1.0 + qg[i])) / vref
             continue
         if (f0 > 0.0) != (f1 > 0.0):
-            p, t = _polish_diving(x, pg[i], f0, pg[i + 1], f1, va, vb, h, w, n, vturn, g)
+            p, t = _polish_diving(x, qg[i], f0, qg[i + 1], f1, vref, va, vb, h, w, n, vturn, g)
             if t < best_t:
                 best_t = t
                 best_p = p
         elif np.isfinite(dg[i]) and np.isfinite(dg[i + 1]) and (dg[i] > 0.0) != (dg[i + 1] > 0.0):
             # an extremum between samples may hide a pair of roots
-            pe = _extremum(pg[i], dg[i], pg[i + 1], va, vb, h, w, n, vturn, g)
-            xs, ts, ds = _diving_eval(pe, va, vb, h, w, n, vturn, g)
+            qe = _extremum(qg[i], dg[i], qg[i + 1], vref, va, vb, h, w, n, vturn, g)
+            xs, ts, ds = _diving_eval(qe, vref, va, vb, h, w, n, vturn, g)
             fe = xs - x
             if (fe > 0.0) != (f0 > 0.0):
-                p, t = _polish_diving(x, pg[i], f0, pe, fe, va, vb, h, w, n, vturn, g)
+                p, t = _polish_diving(x, qg[i], f0, qe, fe, vref, va, vb, h, w, n, vturn, g)
                 if t < best_t:
                     best_t = t
                     best_p = p
-                p, t = _polish_diving(x, pe, fe, pg[i + 1], f1, va, vb, h, w, n, vturn, g)
+                p, t = _polish_diving(x, qe, fe, qg[i + 1], f1, vref, va, vb, h, w, n, vturn, g)
                 if t < best_t:
                     best_t = t
                     best_p = p
@@ -448,20 +454,23 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
             vend = vb[idx]
             if vabove >= vend:
                 continue
-            phi = 1.0 / max(va[idx], vabove)
-            plo = 1.0 / vend if np.isfinite(vend) else 0.0
-            if not (phi > plo):
+            vref = max(va[idx], vabove)
+            # qr at the deep end of the interval (turning at the layer base; 1 for p = 0)
+            rr = vref / vend if np.isfinite(vend) else 0.0
+            if not (rr < 1.0):
                 continue
-            # tau falls with p, so T >= tau(phi) + plo x
+            qtop = np.sqrt((1.0 - rr) * (1.0 + rr))
+            plo = rr / vref
+            # tau grows with qr, so T >= tau(qr = 0) + plo x
             bound = plo * x
             if va[idx] >= vabove:
-                xs0, ts0, ds0 = _diving_eval(phi, va, vb, h, w, idx, va[idx], grad[l])
+                xs0, ts0, ds0 = _diving_eval(0.0, vref, va, vb, h, w, idx, va[idx], grad[l])
                 if np.isfinite(ts0):
-                    bound += ts0 - phi * xs0
+                    bound += ts0 - xs0 / vref
             c_layer[nc] = l
             c_bound[nc] = bound
-            c_plo[nc] = plo
-            c_phi[nc] = phi
+            c_plo[nc] = qtop
+            c_phi[nc] = vref
             nc += 1
         for _ in range(nc):
             ib = -1
@@ -528,8 +537,8 @@ def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant):
     vmx = np.empty(nmax)
     c_layer = np.empty(nl, dtype=np.int64)
     c_bound = np.empty(nl)
-    c_plo = np.empty(nl)
-    c_phi = np.empty(nl)
+    c_plo = np.empty(nl)  # qr at the deep end of each diving interval
+    c_phi = np.empty(nl)  # reference velocity of each diving interval
     pg = np.empty(N_SCAN + 2)
     fg = np.empty(N_SCAN + 2)
     dg = np.empty(N_SCAN + 2)

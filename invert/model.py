@@ -182,7 +182,11 @@ class LayerModel:
                 ratio = np.where(solid, vpa / np.where(vsa > 0, vsa, np.nan), np.inf)
             bad = solid & ~(ratio > MIN_SOLID_VPVS)
             if where == "base":
-                bad[:, -1] &= self.vp_gradient[:, -1] == 0  # half-space base is at infinity; checked via gradients
+                # the half-space has no base: Vp/Vs tends to gp/gs at depth (monotone in between)
+                gp, gs = self.vp_gradient[:, -1], self.vs_gradient[:, -1]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    deep = np.where(gs > 0, gp / np.where(gs > 0, gs, 1.0), np.inf)
+                bad[:, -1] = solid[:, -1] & ~(deep > MIN_SOLID_VPVS)
             if bad.any():
                 m, j = np.argwhere(bad)[0]
                 raise ValueError(f"vs: {_layer_label(j, n_layers)} has Vp/Vs <= sqrt(4/3) at its {where} "

@@ -1,0 +1,282 @@
+"""Run description: a TOML file read with tomllib into validated settings.
+
+Every key is documented in ``docs/config.md``. Errors name the file, the key
+and what was expected. Nothing is evaluated.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .parameters import DEPTH_MODES, S_MODES, LayerSettings
+
+UNITS = {"m": ("m", "m/s"), "km": ("km", "km/s")}
+NOISE_MODELS = ("gaussian", "outlier_mixture", "student_t")
+ORIGIN_MODES = ("known", "normal", "uniform")
+START_MODES = ("prior", "classic")
+
+
+class ConfigError(ValueError):
+    """A problem in the run description, naming the file and key."""
+
+    def __init__(self, path, key: str, message: str):
+        self.path = str(path)
+        self.key = key
+        super().__init__(f"{path}: [{key}] {message}" if key else f"{path}: {message}")
+
+
+@dataclass(frozen=True)
+class NoiseSettings:
+    """Noise model of the picks (see docs/likelihood.md)."""
+
+    model: str = "gaussian"
+    scale: str = "fixed"  # "fixed" or "free"
+    scale_prior: dict = field(default_factory=lambda: {"dist": "lognormal", "median": 1.0, "sigma_log": 0.7})
+    outlier_fraction: float = 0.05
+    outlier_sigma: float = 0.2  # s
+    dof: float = 4.0
+
+
+@dataclass(frozen=True)
+class NuisanceSettings:
+    """Event origin times, event positions and delay terms."""
+
+    origin_time: str = "known"  # "known", "normal", "uniform"
+    origin_time_mean: float = 0.0  # s, relative to the table's origin time (0 when unknown)
+    origin_time_sd: float = 1.0  # s (normal prior)
+    origin_time_width: float = 10.0  # s (uniform prior, centred on the mean)
+    event_depth: dict | None = None  # prior table for unknown source depths
+    epicentre_x: dict | None = None  # prior table for unknown epicentre x
+    epicentre_y: dict | None = None
+    receiver_delay_sd: float = 0.0  # s; > 0 turns on marginalised receiver delays
+    source_delay_sd: float = 0.0  # s
+
+
+@dataclass(frozen=True)
+class SamplerSettings:
+    """emcee settings."""
+
+    walkers: int = 32
+    steps: int = 2000
+    burn: int = 500
+    thin: int = 1
+    ensembles: int = 4
+    seed: int = 1
+    until_converged: bool = False
+    max_steps: int = 20000
+    start: str = "prior"
+    checkpoint_every: int = 100
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """A validated run description."""
+
+    path: Path
+    title: str
+    units: str
+    picks: Path
+    sources: Path | None
+    receivers: Path | None
+    layers: LayerSettings
+    prior: dict
+    constraints: dict
+    noise: NoiseSettings
+    nuisance: NuisanceSettings
+    sampler: SamplerSettings
+    output: Path
+    truth: dict = field(default_factory=dict)
+    raw: dict = field(default_factory=dict)
+
+    @property
+    def length_unit(self) -> str:
+        return UNITS[self.units][0]
+
+    @property
+    def velocity_unit(self) -> str:
+        return UNITS[self.units][1]
+
+
+_TOP_KEYS = {"title", "units", "prior_file", "data", "model", "prior", "constraints", "noise", "nuisance",
+             "sampler", "output", "truth"}
+_SECTION_KEYS = {
+    "data": {"picks", "sources", "receivers"},
+    "model": {"layers", "gradient_layers", "s_velocity", "depth_parameter", "fluid_layers"},
+    "noise": {"model", "scale", "scale_prior", "outlier_fraction", "outlier_sigma", "dof"},
+    "nuisance": {"origin_time", "origin_time_mean", "origin_time_sd", "origin_time_width", "event_depth",
+                 "epicentre_x", "epicentre_y", "receiver_delay_sd", "source_delay_sd"},
+    "sampler": {"walkers", "steps", "burn", "thin", "ensembles", "seed", "until_converged", "max_steps", "start",
+                "checkpoint_every"},
+    "output": {"folder"},
+}
+
+
+def _unknown(path, section: str, keys, allowed) -> None:
+    for key in keys:
+        if key not in allowed:
+            close = difflib.get_close_matches(key, sorted(allowed), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise ConfigError(path, section, f"unknown key {key!r}{hint}; allowed: {', '.join(sorted(allowed))}")
+
+
+def _get(path, section: str, table: dict, key: str, kind, default=None, *, required=False, check=None,
+         expect: str = ""):
+    if key not in table:
+        if required:
+            raise ConfigError(path, section, f"missing key {key!r}" + (f": expected {expect}" if expect else ""))
+        return default
+    value = table[key]
+    ok = isinstance(value, kind) and not (kind in (int, float) and isinstance(value, bool))
+    if kind is float and isinstance(value, int) and not isinstance(value, bool):
+        value, ok = float(value), True
+    if not ok or (check is not None and not check(value)):
+        raise ConfigError(path, section, f"{key} = {value!r}: expected {expect or kind.__name__}")
+    return value
+
+
+def _path(base: Path, value: str | None) -> Path | None:
+    if value is None:
+        return None
+    p = Path(value)
+    return p if p.is_absolute() else (base / p)
+
+
+def _read_toml(path: Path) -> dict:
+    if not path.exists():
+        raise ConfigError(path, "", "file not found")
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, "", f"not valid TOML: {exc}") from None
+
+
+def load_config(path) -> RunConfig:
+    """Read and validate a run description.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML file. Relative paths inside it are relative to its folder.
+
+    Raises
+    ------
+    ConfigError
+        Naming the file, the key and what was expected.
+    """
+    path = Path(path)
+    raw = _read_toml(path)
+    base = path.parent
+    _unknown(path, "", raw.keys(), _TOP_KEYS)
+    for section, allowed in _SECTION_KEYS.items():
+        if section in raw:
+            if not isinstance(raw[section], dict):
+                raise ConfigError(path, section, "expected a table")
+            _unknown(path, section, raw[section].keys(), allowed)
+
+    # prior template: its [model], [prior] and [constraints] are defaults that the run overrides
+    template: dict = {}
+    if "prior_file" in raw:
+        tpath = _path(base, _get(path, "", raw, "prior_file", str, expect="a path to a TOML prior template"))
+        template = _read_toml(tpath)
+        _unknown(tpath, "", template.keys(), {"title", "units", "model", "prior", "constraints"})
+        if "units" in template and "units" in raw and template["units"] != raw["units"]:
+            raise ConfigError(path, "", f"units = {raw['units']!r} but the prior template {tpath.name} is "
+                                        f"written in {template['units']!r}; use a template in the same units")
+    title = _get(path, "", raw, "title", str, "untitled run")
+    units = raw.get("units", template.get("units"))
+    if units not in UNITS:
+        raise ConfigError(path, "", f"units = {units!r}: expected 'm' (metres, m/s) or 'km' (kilometres, km/s)")
+
+    data = raw.get("data", {})
+    picks = _path(base, _get(path, "data", data, "picks", str, required=True, expect="the picks CSV file"))
+    sources = _path(base, _get(path, "data", data, "sources", str))
+    receivers = _path(base, _get(path, "data", data, "receivers", str))
+    for key, p in (("picks", picks), ("sources", sources), ("receivers", receivers)):
+        if p is not None and not p.exists():
+            raise ConfigError(path, "data", f"{key} = {str(p)!r}: file not found")
+    if (sources is None) != (receivers is None):
+        raise ConfigError(path, "data", "give both 'sources' and 'receivers' tables, or neither "
+                                        "(then the picks file carries distance and depths)")
+
+    model = {**template.get("model", {}), **raw.get("model", {})}
+    _unknown(path, "model", model.keys(), _SECTION_KEYS["model"])
+    int_list = (lambda v: isinstance(v, list) and all(isinstance(i, int) and not isinstance(i, bool) for i in v))
+    layers = LayerSettings(
+        n_layers=_get(path, "model", model, "layers", int, required=True, check=lambda v: v >= 0,
+                      expect="the number of layers above the half-space (an integer >= 0)"),
+        gradient_layers=tuple(_get(path, "model", model, "gradient_layers", list, [], check=int_list,
+                                   expect="a list of layer numbers")),
+        s_mode=_get(path, "model", model, "s_velocity", str, "vpvs", check=lambda v: v in S_MODES,
+                    expect=" or ".join(repr(m) for m in S_MODES)),
+        depth_parameter=_get(path, "model", model, "depth_parameter", str, "thickness",
+                             check=lambda v: v in DEPTH_MODES, expect="'thickness' or 'depth'"),
+        fluid_layers=tuple(_get(path, "model", model, "fluid_layers", list, [], check=int_list,
+                                expect="a list of layer numbers")),
+    )
+    prior = {**template.get("prior", {}), **raw.get("prior", {})}
+    constraints = {**template.get("constraints", {}), **raw.get("constraints", {})}
+
+    nz = raw.get("noise", {})
+    noise = NoiseSettings(
+        model=_get(path, "noise", nz, "model", str, "gaussian", check=lambda v: v in NOISE_MODELS,
+                   expect=" or ".join(repr(m) for m in NOISE_MODELS)),
+        scale=_get(path, "noise", nz, "scale", str, "fixed", check=lambda v: v in ("fixed", "free"),
+                   expect="'fixed' (use the picks' sigma) or 'free' (sample a common multiplier)"),
+        scale_prior=_get(path, "noise", nz, "scale_prior", dict, NoiseSettings().scale_prior),
+        outlier_fraction=_get(path, "noise", nz, "outlier_fraction", float, 0.05, check=lambda v: 0 < v < 1,
+                              expect="a fraction between 0 and 1"),
+        outlier_sigma=_get(path, "noise", nz, "outlier_sigma", float, 0.2, check=lambda v: v > 0,
+                           expect="a positive width in seconds"),
+        dof=_get(path, "noise", nz, "dof", float, 4.0, check=lambda v: v > 0, expect="degrees of freedom > 0"),
+    )
+    nu = raw.get("nuisance", {})
+    positive = (lambda v: v > 0)
+    nuisance = NuisanceSettings(
+        origin_time=_get(path, "nuisance", nu, "origin_time", str, "known", check=lambda v: v in ORIGIN_MODES,
+                         expect="'known' (from the sources table), 'normal' or 'uniform' (marginalised)"),
+        origin_time_mean=_get(path, "nuisance", nu, "origin_time_mean", float, 0.0),
+        origin_time_sd=_get(path, "nuisance", nu, "origin_time_sd", float, 1.0, check=positive,
+                            expect="a positive standard deviation in seconds"),
+        origin_time_width=_get(path, "nuisance", nu, "origin_time_width", float, 10.0, check=positive,
+                               expect="a positive width in seconds"),
+        event_depth=_get(path, "nuisance", nu, "event_depth", dict, None, expect="a prior table"),
+        epicentre_x=_get(path, "nuisance", nu, "epicentre_x", dict, None, expect="a prior table"),
+        epicentre_y=_get(path, "nuisance", nu, "epicentre_y", dict, None, expect="a prior table"),
+        receiver_delay_sd=_get(path, "nuisance", nu, "receiver_delay_sd", float, 0.0, check=lambda v: v >= 0,
+                               expect="a standard deviation >= 0 in seconds"),
+        source_delay_sd=_get(path, "nuisance", nu, "source_delay_sd", float, 0.0, check=lambda v: v >= 0,
+                             expect="a standard deviation >= 0 in seconds"),
+    )
+    sm = raw.get("sampler", {})
+    pos_int = (lambda v: v >= 1)
+    sampler = SamplerSettings(
+        walkers=_get(path, "sampler", sm, "walkers", int, 32, check=lambda v: v >= 4, expect="an integer >= 4"),
+        steps=_get(path, "sampler", sm, "steps", int, 2000, check=pos_int, expect="an integer >= 1"),
+        burn=_get(path, "sampler", sm, "burn", int, 500, check=lambda v: v >= 0, expect="an integer >= 0"),
+        thin=_get(path, "sampler", sm, "thin", int, 1, check=pos_int, expect="an integer >= 1"),
+        ensembles=_get(path, "sampler", sm, "ensembles", int, 4, check=pos_int, expect="an integer >= 1"),
+        seed=_get(path, "sampler", sm, "seed", int, 1, check=lambda v: v >= 0, expect="an integer >= 0"),
+        until_converged=_get(path, "sampler", sm, "until_converged", bool, False, expect="true or false"),
+        max_steps=_get(path, "sampler", sm, "max_steps", int, 20000, check=pos_int, expect="an integer >= 1"),
+        start=_get(path, "sampler", sm, "start", str, "prior", check=lambda v: v in START_MODES,
+                   expect="'prior' or 'classic'"),
+        checkpoint_every=_get(path, "sampler", sm, "checkpoint_every", int, 100, check=pos_int,
+                              expect="an integer >= 1"),
+    )
+    if sampler.burn >= sampler.steps and not sampler.until_converged:
+        raise ConfigError(path, "sampler", f"burn = {sampler.burn} must be smaller than steps = {sampler.steps}")
+    if sampler.walkers % 2:
+        raise ConfigError(path, "sampler", f"walkers = {sampler.walkers}: emcee needs an even number of walkers")
+    out = raw.get("output", {})
+    folder = _path(base, _get(path, "output", out, "folder", str, f"runs/{path.stem}", expect="a folder path"))
+    truth = raw.get("truth", {})
+    if not isinstance(truth, dict) or not all(isinstance(v, (int, float)) for v in truth.values()):
+        raise ConfigError(path, "truth", "expected parameter = number entries (the true model of synthetic data)")
+    return RunConfig(path=path, title=title, units=units, picks=picks, sources=sources, receivers=receivers,
+                     layers=layers, prior=prior, constraints=constraints, noise=noise, nuisance=nuisance,
+                     sampler=sampler, output=folder, truth=dict(truth), raw=raw)
