@@ -12,12 +12,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .parameters import DEPTH_MODES, S_MODES, LayerSettings
+from .parameters import S_MODES, LayerSettings
 
 UNITS = {"m": ("m", "m/s"), "km": ("km", "km/s")}
 NOISE_MODELS = ("gaussian", "outlier_mixture", "student_t")
 ORIGIN_MODES = ("known", "normal", "uniform")
-START_MODES = ("prior", "classic")
+START_MODES = ("optimum", "prior", "classic")
 
 
 class ConfigError(ValueError):
@@ -68,7 +68,7 @@ class SamplerSettings:
     seed: int = 1
     until_converged: bool = False
     max_steps: int = 20000
-    start: str = "prior"
+    start: str = "optimum"
     checkpoint_every: int = 100
 
 
@@ -105,7 +105,7 @@ _TOP_KEYS = {"title", "units", "prior_file", "data", "model", "prior", "constrai
              "sampler", "output", "truth"}
 _SECTION_KEYS = {
     "data": {"picks", "sources", "receivers"},
-    "model": {"layers", "gradient_layers", "s_velocity", "depth_parameter", "fluid_layers"},
+    "model": {"layers", "gradient_layers", "vpvs_mode", "depth_parameter", "fluid_layers"},
     "noise": {"model", "scale", "scale_prior", "outlier_fraction", "outlier_sigma", "dof"},
     "nuisance": {"origin_time", "origin_time_mean", "origin_time_sd", "origin_time_width", "event_depth",
                  "epicentre_x", "epicentre_y", "receiver_delay_sd", "source_delay_sd"},
@@ -183,12 +183,15 @@ def load_config(path) -> RunConfig:
     if "prior_file" in raw:
         tpath = _path(base, _get(path, "", raw, "prior_file", str, expect="a path to a TOML prior template"))
         template = _read_toml(tpath)
-        _unknown(tpath, "", template.keys(), {"title", "units", "model", "prior", "constraints"})
-        if "units" in template and "units" in raw and template["units"] != raw["units"]:
+        _unknown(tpath, "", template.keys(), {"template", "prior", "constraints"})
+        template_units = template.get("template", {}).get("units")
+        if template_units is not None and "units" not in raw:
+            raw = {**raw, "units": template_units}
+        if template_units is not None and template_units != raw["units"]:
             raise ConfigError(path, "", f"units = {raw['units']!r} but the prior template {tpath.name} is "
-                                        f"written in {template['units']!r}; use a template in the same units")
+                                        f"written in {template_units!r}; use a template in the same units")
     title = _get(path, "", raw, "title", str, "untitled run")
-    units = raw.get("units", template.get("units"))
+    units = raw.get("units")
     if units not in UNITS:
         raise ConfigError(path, "", f"units = {units!r}: expected 'm' (metres, m/s) or 'km' (kilometres, km/s)")
 
@@ -203,7 +206,13 @@ def load_config(path) -> RunConfig:
         raise ConfigError(path, "data", "give both 'sources' and 'receivers' tables, or neither "
                                         "(then the picks file carries distance and depths)")
 
-    model = {**template.get("model", {}), **raw.get("model", {})}
+    tmpl = template.get("template", {})
+    from_template = {k: v for k, v in (("vpvs_mode", tmpl.get("vpvs_mode")),
+                                       ("gradient_layers", tmpl.get("gradient_layers")),
+                                       ("depth_parameter", tmpl.get("depth_parameter"))) if v is not None}
+    if "n_layers" in tmpl:
+        from_template["layers"] = tmpl["n_layers"] - 1
+    model = {**from_template, **raw.get("model", {})}
     _unknown(path, "model", model.keys(), _SECTION_KEYS["model"])
     int_list = (lambda v: isinstance(v, list) and all(isinstance(i, int) and not isinstance(i, bool) for i in v))
     layers = LayerSettings(
@@ -211,10 +220,10 @@ def load_config(path) -> RunConfig:
                       expect="the number of layers above the half-space (an integer >= 0)"),
         gradient_layers=tuple(_get(path, "model", model, "gradient_layers", list, [], check=int_list,
                                    expect="a list of layer numbers")),
-        s_mode=_get(path, "model", model, "s_velocity", str, "vpvs", check=lambda v: v in S_MODES,
-                    expect=" or ".join(repr(m) for m in S_MODES)),
-        depth_parameter=_get(path, "model", model, "depth_parameter", str, "thickness",
-                             check=lambda v: v in DEPTH_MODES, expect="'thickness' or 'depth'"),
+        vpvs_mode=_get(path, "model", model, "vpvs_mode", str, "per_layer", check=lambda v: v in S_MODES,
+                       expect=" or ".join(repr(m) for m in S_MODES)),
+        depth_parameter=_get(path, "model", model, "depth_parameter", bool, False,
+                             expect="true (priors on interface depths) or false (on thicknesses)"),
         fluid_layers=tuple(_get(path, "model", model, "fluid_layers", list, [], check=int_list,
                                 expect="a list of layer numbers")),
     )
@@ -263,8 +272,9 @@ def load_config(path) -> RunConfig:
         seed=_get(path, "sampler", sm, "seed", int, 1, check=lambda v: v >= 0, expect="an integer >= 0"),
         until_converged=_get(path, "sampler", sm, "until_converged", bool, False, expect="true or false"),
         max_steps=_get(path, "sampler", sm, "max_steps", int, 20000, check=pos_int, expect="an integer >= 1"),
-        start=_get(path, "sampler", sm, "start", str, "prior", check=lambda v: v in START_MODES,
-                   expect="'prior' or 'classic'"),
+        start=_get(path, "sampler", sm, "start", str, "optimum", check=lambda v: v in START_MODES,
+                   expect="'optimum' (near the posterior mode), 'prior' (prior draws) or 'classic' "
+                          "(around the intercept-time estimate)"),
         checkpoint_every=_get(path, "sampler", sm, "checkpoint_every", int, 100, check=pos_int,
                               expect="an integer >= 1"),
     )

@@ -35,7 +35,6 @@ from typing import Mapping
 
 import numpy as np
 from scipy.spatial import cKDTree
-from scipy.special import erfc
 
 WAVES = ("P", "S")
 BRANCHES = ("first", "direct", "head", "reflection")
@@ -536,7 +535,8 @@ def _parse_points(table: _Table, kind: str, datum_elevation: float) -> _Points:
 
 
 def _picks_from_text(path: str, text: str, tables, datum_elevation: float) -> PickSet:
-    """Build a PickSet from the picks text and optional (path, text) x2 of the tables."""
+    """Build a PickSet from the picks text and, if not None, ``tables`` =
+    (sources path, sources text, receivers path, receivers text)."""
     table = _parse_table(path, text, "picks", PICK_REQUIRED, PICK_OPTIONAL + INLINE_GEOMETRY)
     present = [c for c in INLINE_GEOMETRY if c in table.columns]
     inline = bool(present)
@@ -560,7 +560,7 @@ def _picks_from_text(path: str, text: str, tables, datum_elevation: float) -> Pi
                                              SOURCE_OPTIONAL, vertical=True), "source", datum_elevation)
         receivers = _parse_points(_parse_table(rec_path, rec_text, "receivers", RECEIVER_REQUIRED,
                                                (), vertical=True), "receiver", datum_elevation)
-        tables = (src_path, rec_path)
+        table_paths = (src_path, rec_path)
 
     cols = {name: [] for name in ("line_numbers", "source_id", "receiver_id", "wave", "branch", "interface",
                                   "time", "sigma", "distance", "source_depth", "receiver_depth")}
@@ -568,27 +568,14 @@ def _picks_from_text(path: str, text: str, tables, datum_elevation: float) -> Pi
     seen_source: dict = {}   # inline: name -> (line, depth)
     seen_receiver: dict = {}
     seen_pair: dict = {}     # inline: (source, receiver) -> (line, distance)
+    has_interface = "interface" in table.columns
     for lineno, row in table.rows:
-        src = _name(path, lineno, "source", row["source"])
-        rec = _name(path, lineno, "receiver", row["receiver"])
-        wave = row["wave"].upper()
-        if wave not in WAVES:
-            got = f"got '{row['wave']}'" if row["wave"] else "the cell is empty"
-            raise DataError(path, lineno, "wave", f"wave must be P or S ({got})")
-        branch = row.get("branch", "").lower() or "first"
-        if branch not in BRANCHES:
-            raise DataError(path, lineno, "branch", f"unknown branch '{row['branch']}'; use one of "
-                                                    f"{', '.join(BRANCHES)} (empty means first)")
-        iface = _interface(path, lineno, row, branch, "interface" in table.columns)
-        t = _number(path, lineno, "time", row["time"])
-        sigma = _number(path, lineno, "sigma", row["sigma"])
-        if sigma <= 0:
-            raise DataError(path, lineno, "sigma", f"sigma must be > 0 (got {row['sigma']})")
+        src, rec, wave, branch, iface, t, sigma = _pick_fields(path, lineno, row, has_interface)
         key = (src, rec, wave, branch, iface)
         if key in seen_pick:
             what = f"{wave} {branch}" + (f" on interface {iface}" if iface else "")
             raise DataError(path, lineno, None, f"duplicate pick: source '{src}', receiver '{rec}', {what} "
-                                                f"is also on line {seen_pick[key]}")
+                                                f"was already given on line {seen_pick[key]}")
         seen_pick[key] = lineno
         if inline:
             dist = _number(path, lineno, "distance", row["distance"])
@@ -602,7 +589,7 @@ def _picks_from_text(path: str, text: str, tables, datum_elevation: float) -> Pi
                             seen_pair, (src, rec), dist)
             origin = 0.0
         else:
-            for name, pts, tpath in ((src, sources, tables[0]), (rec, receivers, tables[1])):
+            for name, pts, tpath in ((src, sources, table_paths[0]), (rec, receivers, table_paths[1])):
                 if name not in pts.index:
                     kind = "source" if pts is sources else "receiver"
                     raise DataError(path, lineno, kind, f"{kind} '{name}' is not in the {kind}s table {tpath}")
@@ -620,7 +607,27 @@ def _picks_from_text(path: str, text: str, tables, datum_elevation: float) -> Pi
 
     if inline:
         return _assemble_inline(path, cols, seen_source, seen_receiver)
-    return _assemble_tables(path, cols, sources, receivers, tables)
+    return _assemble_tables(path, cols, sources, receivers, table_paths)
+
+
+def _pick_fields(path, lineno, row, has_interface) -> tuple:
+    """Validate the non-geometry cells of one picks row."""
+    src = _name(path, lineno, "source", row["source"])
+    rec = _name(path, lineno, "receiver", row["receiver"])
+    wave = row["wave"].upper()
+    if wave not in WAVES:
+        got = f"got '{row['wave']}'" if row["wave"] else "the cell is empty"
+        raise DataError(path, lineno, "wave", f"wave must be P or S ({got})")
+    branch = row.get("branch", "").lower() or "first"
+    if branch not in BRANCHES:
+        raise DataError(path, lineno, "branch", f"unknown branch '{row['branch']}'; use one of "
+                                                f"{', '.join(BRANCHES)} (empty means first)")
+    iface = _interface(path, lineno, row, branch, has_interface)
+    t = _number(path, lineno, "time", row["time"])
+    sigma = _number(path, lineno, "sigma", row["sigma"])
+    if sigma <= 0:
+        raise DataError(path, lineno, "sigma", f"sigma must be > 0 (got {row['sigma']})")
+    return src, rec, wave, branch, iface, t, sigma
 
 
 def _interface(path, lineno, row, branch, has_column) -> int:
@@ -671,9 +678,9 @@ def _assemble_inline(path, cols, seen_source, seen_receiver) -> PickSet:
         receiver_lines=[seen_receiver[n][0] for n in rec_names])
 
 
-def _assemble_tables(path, cols, sources: _Points, receivers: _Points, tables) -> PickSet:
+def _assemble_tables(path, cols, sources: _Points, receivers: _Points, table_paths) -> PickSet:
     fields, notes = {}, []
-    for kind, pts, tpath in (("source", sources, tables[0]), ("receiver", receivers, tables[1])):
+    for kind, pts, tpath in (("source", sources, table_paths[0]), ("receiver", receivers, table_paths[1])):
         table_index = np.array([pts.index[n] for n in cols[f"{kind}_id"]], dtype=int)
         used, compact = np.unique(table_index, return_inverse=True)  # table order
         fields[f"{kind}_index"] = compact.reshape(-1)
@@ -688,7 +695,7 @@ def _assemble_tables(path, cols, sources: _Points, receivers: _Points, tables) -
             notes.append(f"{len(unused)} {kind}(s) in {tpath} have no picks and are not used: {listed}"
                          + (", ..." if len(unused) > 8 else ""))
     sx, sz = np.asarray(fields["source_x"], float), np.asarray(fields["source_z"], float)
-    return PickSet(path=path, geometry="tables", sources_path=tables[0], receivers_path=tables[1],
+    return PickSet(path=path, geometry="tables", sources_path=table_paths[0], receivers_path=table_paths[1],
                    notes=tuple(notes), depth_known=np.isfinite(sz), epicentre_known=np.isfinite(sx),
                    **cols, **fields)
 
@@ -863,9 +870,10 @@ def _default_tolerance(picks: PickSet) -> float:
 def _points(picks: PickSet, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
     """Point number of every source and receiver (same number = same place); -1 if unknown.
 
-    Tables: positions within ``tolerance`` (3-D) are the same point. Inline
-    geometry (no coordinates): a source and a receiver with the same id and
-    depths within ``tolerance`` are the same point.
+    Tables: known positions within ``tolerance`` of each other (3-D, chained)
+    are one point, so a shot at a geophone and a repeated shot share it.
+    Inline geometry (no coordinates): a source and a receiver with the same id
+    and depths within ``tolerance`` are the same point.
     """
     nr, ns = picks.n_receivers, picks.n_sources
     parent = np.arange(nr + ns)
@@ -876,12 +884,12 @@ def _points(picks: PickSet, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
         return k
 
     if picks.geometry == "tables":
-        rec_xyz = np.column_stack([picks.receiver_x, picks.receiver_y, picks.receiver_z])
-        src_xyz = np.column_stack([picks.source_x, picks.source_y, picks.source_z])
         known = picks.depth_known & picks.epicentre_known
-        for s in np.flatnonzero(known):
-            for r in np.flatnonzero(np.linalg.norm(rec_xyz - src_xyz[s], axis=1) <= tolerance):
-                parent[root(nr + s)] = root(int(r))
+        xyz = np.vstack([np.column_stack([picks.receiver_x, picks.receiver_y, picks.receiver_z]),
+                         np.column_stack([picks.source_x, picks.source_y, picks.source_z])])
+        members = np.concatenate([np.arange(nr), nr + np.flatnonzero(known)])
+        for u, v in cKDTree(xyz[members]).query_pairs(r=tolerance, output_type="ndarray"):
+            parent[root(members[u])] = root(members[v])
     else:
         known = np.ones(ns, bool)
         rec_of = {str(n): i for i, n in enumerate(picks.receiver_names)}
@@ -889,7 +897,7 @@ def _points(picks: PickSet, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
             r = rec_of.get(str(name))
             if r is not None and abs(picks.source_z[s] - picks.receiver_z[r]) <= tolerance:
                 parent[root(nr + s)] = root(r)
-    roots = np.array([root(k) for k in range(nr + ns)])
+    roots = np.array([root(k) for k in range(nr + ns)], dtype=int)
     source_point = np.where(known, roots[nr:], -1)
     return source_point, roots[:nr]
 
@@ -978,7 +986,7 @@ def offset_mismatch(picks: PickSet, tolerance: float | None = None) -> list[Pick
     src_pt, rec_pt = _points(picks, tol)
     frm, to = src_pt[picks.source_index], rec_pt[picks.receiver_index]
     ok = np.flatnonzero(_comparable(picks))
-    keys = np.char.add(np.char.add(picks.wave[ok], picks.branch[ok]), picks.interface[ok].astype(str))
+    keys = np.char.add(np.char.add(picks.wave[ok], "/" + picks.branch[ok] + "/"), picks.interface[ok].astype(str))
     pairs = []
     for key in np.unique(keys):
         idx = ok[keys == key]
@@ -995,7 +1003,7 @@ def offset_mismatch(picks: PickSet, tolerance: float | None = None) -> list[Pick
 
 def _chance_fraction(threshold: float) -> float:
     """P(|z| > threshold) for a standard normal z."""
-    return float(erfc(threshold / math.sqrt(2.0)))
+    return math.erfc(threshold / math.sqrt(2.0))
 
 
 def _worst(pairs: list[PickPair], threshold: float, limit: int = 5) -> list[str]:

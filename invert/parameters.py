@@ -16,9 +16,9 @@ from typing import Mapping
 import numpy as np
 
 from .model import MIN_SOLID_VPVS, LayerModel
+from .prior import parameter_names
 
-S_MODES = ("vpvs", "shared_vpvs", "vs", "none")
-DEPTH_MODES = ("thickness", "depth")
+S_MODES = ("per_layer", "shared", "vs", "none")
 
 #: Nominal Vp/Vs used to fill S velocities when a run has no S picks (never used in a forward call).
 _P_ONLY_VPVS = 2.0
@@ -34,19 +34,19 @@ class LayerSettings:
         Number of layers above the half-space (N >= 0).
     gradient_layers : tuple of int
         Layer numbers (1..N+1) that carry a linear P-velocity gradient.
-    s_mode : str
-        'vpvs' (Vp/Vs per layer), 'shared_vpvs' (one Vp/Vs for all solid
-        layers), 'vs' (S velocity per layer) or 'none' (P picks only).
-    depth_parameter : str
-        'thickness' (priors on thicknesses) or 'depth' (priors on interface depths).
+    vpvs_mode : str
+        'per_layer' (``vpvs_k`` per layer), 'shared' (one ``vpvs``), 'vs'
+        (``vs_k`` per layer) or 'none' (P picks only).
+    depth_parameter : bool
+        False: priors on thicknesses ``thickness_k``; True: on interface depths ``depth_k``.
     fluid_layers : tuple of int
         Layer numbers with Vs = 0 (no S parameter is sampled for them).
     """
 
     n_layers: int
     gradient_layers: tuple = ()
-    s_mode: str = "vpvs"
-    depth_parameter: str = "thickness"
+    vpvs_mode: str = "per_layer"
+    depth_parameter: bool = False
     fluid_layers: tuple = field(default_factory=tuple)
 
     def __post_init__(self):
@@ -57,11 +57,10 @@ class LayerSettings:
             for k in layers:
                 if int(k) != k or not 1 <= k <= total:
                     raise ValueError(f"{key}: layer numbers run from 1 to {total} (the half-space); got {k!r}")
-        if self.s_mode not in S_MODES:
-            raise ValueError(f"model.s_velocity: expected one of {', '.join(S_MODES)}, got {self.s_mode!r}")
-        if self.depth_parameter not in DEPTH_MODES:
-            raise ValueError(f"model.depth_parameter: expected one of {', '.join(DEPTH_MODES)}, "
-                             f"got {self.depth_parameter!r}")
+        if self.vpvs_mode not in S_MODES:
+            raise ValueError(f"model.vpvs_mode: expected one of {', '.join(S_MODES)}, got {self.vpvs_mode!r}")
+        if not isinstance(self.depth_parameter, bool):
+            raise ValueError(f"model.depth_parameter: expected true or false, got {self.depth_parameter!r}")
 
     @property
     def total_layers(self) -> int:
@@ -69,25 +68,10 @@ class LayerSettings:
         return self.n_layers + 1
 
     def names(self) -> list[str]:
-        """Every layer parameter name of this parameterisation, in a fixed order."""
-        n = self.n_layers
-        out = [f"{self.depth_parameter}_{k}" for k in range(1, n + 1)]
-        out += [f"vp_{k}" for k in range(1, n + 2)]
-        out += [f"gradient_{k}" for k in sorted(self.gradient_layers)]
-        solid = [k for k in range(1, n + 2) if k not in self.fluid_layers]
-        if self.s_mode == "vpvs":
-            out += [f"vpvs_{k}" for k in solid]
-        elif self.s_mode == "shared_vpvs" and solid:
-            out += ["vpvs"]
-        elif self.s_mode == "vs":
-            out += [f"vs_{k}" for k in solid]
-        return out
-
-    def unit(self, name: str, length: str) -> str:
-        """Unit of parameter ``name`` given the length unit ('m' or 'km')."""
-        kind = name.rsplit("_", 1)[0] if name[-1].isdigit() else name
-        return {"thickness": length, "depth": length, "vp": f"{length}/s", "vs": f"{length}/s",
-                "gradient": "1/s", "vpvs": "1"}.get(kind, "")
+        """Every layer parameter name of this parameterisation, in the prior's order."""
+        return list(parameter_names(self.total_layers, vpvs_mode=self.vpvs_mode,
+                                    gradient_layers=sorted(self.gradient_layers),
+                                    depth_parameter=self.depth_parameter))
 
 
 def _column(values: Mapping[str, np.ndarray], name: str, n: int) -> np.ndarray:
@@ -105,7 +89,7 @@ def layer_arrays(values: Mapping[str, np.ndarray], settings: LayerSettings) -> d
     """Arrays thickness (B,N), vp, gradient, vs (B,N+1) from named values (B,) or scalars."""
     n = batch_size(values)
     nl = settings.total_layers
-    if settings.depth_parameter == "thickness":
+    if not settings.depth_parameter:
         thick = np.stack([_column(values, f"thickness_{k}", n) for k in range(1, nl)], axis=1) if nl > 1 \
             else np.zeros((n, 0))
     else:
@@ -120,11 +104,11 @@ def layer_arrays(values: Mapping[str, np.ndarray], settings: LayerSettings) -> d
     for k in range(1, nl + 1):
         if k in settings.fluid_layers:
             vs[:, k - 1] = 0.0
-        elif settings.s_mode == "vpvs":
+        elif settings.vpvs_mode == "per_layer":
             vs[:, k - 1] = vp[:, k - 1] / _column(values, f"vpvs_{k}", n)
-        elif settings.s_mode == "shared_vpvs":
+        elif settings.vpvs_mode == "shared":
             vs[:, k - 1] = vp[:, k - 1] / _column(values, "vpvs", n)
-        elif settings.s_mode == "vs":
+        elif settings.vpvs_mode == "vs":
             vs[:, k - 1] = _column(values, f"vs_{k}", n)
         else:
             vs[:, k - 1] = vp[:, k - 1] / _P_ONLY_VPVS

@@ -118,7 +118,8 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     matplotlib.figure.Figure
         Panels: one per wave (colour: fraction of models per velocity bin at
         each depth; median and 68 % / 95 % envelopes of velocity at each depth),
-        then the interface-depth histograms on the same depth axis.
+        then the interface-depth histograms on the same depth axis, each
+        scaled to its own peak so that deep, wide ones stay visible.
     """
     z = _default_grid(model) if depth_grid is None else np.asarray(depth_grid, dtype=float)
     if z.ndim != 1 or z.size < 2 or np.any(np.diff(z) <= 0):
@@ -169,11 +170,17 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     if n_if:
         ax = axes[-1]
         depths = model.interface_depths
-        bins = np.linspace(z[0], z[-1], 81)
         for k in range(n_if):
-            ax.hist(depths[:, k], bins=bins, orientation="horizontal", density=True, alpha=0.55,
-                    color=f"C{k % 10}", label=f"interface {k + 1}")
-        ax.set_xlabel(f"probability density [1/{length_unit}]")
+            lo, hi = np.quantile(depths[:, k], [0.001, 0.999])
+            # about 40 bins over each interface's spread, none thinner than 1/150 of the depth axis
+            width = max((hi - lo) / 40.0, (z[-1] - z[0]) / 150.0)
+            n_bins = int(np.ceil((hi - lo) / width)) + 2
+            bins = lo - width + width * np.arange(n_bins + 1)
+            counts, _ = np.histogram(depths[:, k], bins)
+            ax.stairs(counts / counts.max(), bins, orientation="horizontal", fill=True, alpha=0.55,
+                      color=f"C{k % 10}", label=f"interface {k + 1}")
+        ax.set_xlabel("relative frequency\n(each histogram scaled to peak 1)")
+        ax.set_xlim(0.0, 1.05)
         ax.set_title("interface depths")
         ax.legend(loc="lower right", fontsize=8)
         if truth is not None:
@@ -441,7 +448,7 @@ def plot_traces(chains, labels: Sequence[str], *, burn_in: int | None = None, ma
     return _finish(fig, path)
 
 
-def plot_convergence(names: Sequence[str], rhat, ess, *, rhat_target: float = 1.01,
+def plot_convergence(names: Sequence[str], rhat, ess, *, ess_tail=None, rhat_target: float = 1.01,
                      ess_target: float = 400.0, path=None) -> Figure:
     """R-hat and effective sample size per parameter against their targets.
 
@@ -453,6 +460,8 @@ def plot_convergence(names: Sequence[str], rhat, ess, *, rhat_target: float = 1.
     names : sequence of K str
     rhat, ess : (K,) arrays
         Rank-normalised split R-hat [dimensionless] and bulk ESS [draws].
+    ess_tail : (K,) array, optional
+        Tail ESS [draws], drawn as black diamonds on the ESS bars.
     rhat_target, ess_target : float
     path : str or Path, optional
     """
@@ -461,17 +470,22 @@ def plot_convergence(names: Sequence[str], rhat, ess, *, rhat_target: float = 1.
     k = len(names)
     if r.shape != (k,) or e.shape != (k,):
         raise ValueError(f"rhat, ess: expected {k} values each (one per name), got {r.shape} and {e.shape}")
+    et = None if ess_tail is None else np.asarray(ess_tail, dtype=float)
+    if et is not None and et.shape != (k,):
+        raise ValueError(f"ess_tail: expected {k} values (one per name), got {et.shape}")
     fig = _figure(9.0, 0.35 * k + 1.8)
     ax_r, ax_e = fig.subplots(1, 2, sharey=True)
     y = np.arange(k)
     bad_r = ~(r < rhat_target)
-    bad_e = ~(e > ess_target)
+    bad_e = ~(e > ess_target) | (False if et is None else ~(et > ess_target))
     ax_r.barh(y, r - 1.0, left=1.0, color=np.where(bad_r, "tab:red", "tab:blue"))
     ax_r.axvline(rhat_target, color="k", ls="--", lw=1.0, label=f"target {rhat_target:g}")
     ax_r.set_xlabel("R-hat [dimensionless]")
     ax_r.set_xlim(left=min(0.995, np.nanmin(r) - 0.005 if np.isfinite(r).any() else 0.995))
     ax_e.barh(y, e, color=np.where(bad_e, "tab:red", "tab:blue"))
     ax_e.axvline(ess_target, color="k", ls="--", lw=1.0, label=f"target {ess_target:g}")
+    if et is not None:
+        ax_e.plot(et, y, ls="", marker="D", ms=5, color="k", label="tail ESS (bars: bulk)")
     ax_e.set_xlabel("effective sample size [draws]")
     ax_r.set_yticks(y, list(names), fontsize=8)
     ax_r.invert_yaxis()

@@ -640,7 +640,7 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
     n_ens, n_walkers, n_dim = initial.shape
     if n_ens < 1 or n_dim < 1:
         raise ValueError(f"initial must have at least one ensemble and one parameter, got {initial.shape}")
-    if n_walkers < 2 * n_dim:
+    if moves is None and n_walkers < 2 * n_dim:
         raise ValueError(f"the stretch move needs at least 2 x parameters = {2 * n_dim} walkers per ensemble, "
                          f"got {n_walkers}")
     if not np.all(np.isfinite(initial)):
@@ -881,10 +881,14 @@ def convergence_report(result: SamplerResult, burn: int | None = None, thin: int
         by_ensemble = kept.reshape(n_ens, n_draws * n_walkers, n_dim)
         with np.errstate(all="ignore"):
             rhat_w = _arviz_stat(az.rhat, by_walker, method="rank")
-            rhat_e = _arviz_stat(az.rhat, by_ensemble, method="rank")
+            if n_ens >= 2:  # arviz needs two chains; one ensemble cannot be compared with itself
+                rhat_e = _arviz_stat(az.rhat, by_ensemble, method="rank")
             ess_b = _arviz_stat(az.ess, by_walker, method="bulk")
             ess_t = _arviz_stat(az.ess, by_walker, method="tail")
-    rhat = np.where(np.isnan(rhat_w) | np.isnan(rhat_e), np.nan, np.fmax(rhat_w, rhat_e))
+    if n_ens < 2:
+        rhat = rhat_w
+    else:
+        rhat = np.where(np.isnan(rhat_w) | np.isnan(rhat_e), np.nan, np.fmax(rhat_w, rhat_e))
 
     tau_e = np.full((n_ens, n_dim), np.nan)
     if n_draws >= 2:
@@ -936,7 +940,8 @@ def convergence_report(result: SamplerResult, burn: int | None = None, thin: int
     out = (acc < lo) | (acc > hi)
     if out.any():
         which = ", ".join(f"ensemble {e + 1} ({acc[e]:.2f})" for e in np.flatnonzero(out))
-        notes.append(f"acceptance fraction outside the usual {lo:g}-{hi:g}: {which}")
+        hint = " (high values are usual with very few parameters)" if (acc[out] > hi).all() else ""
+        notes.append(f"acceptance fraction outside the usual {lo:g}-{hi:g}: {which}{hint}")
     low_walkers = int(np.sum(acc_w < lo))
     if low_walkers and not out.all():
         notes.append(f"{low_walkers} walker(s) accept fewer than {lo:g} of their proposals")

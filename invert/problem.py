@@ -1,0 +1,292 @@
+"""The inverse problem: priors + picks + noise model -> batched log-posterior.
+
+A :class:`Problem` maps a batch of free-parameter vectors ``theta`` (B, D) --
+the layer parameters of the prior followed by nuisance parameters (event
+depths, unknown epicentres, a noise scale) -- to log prior, predicted travel
+times and log likelihood, all walkers in one call.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import likelihood as lk
+from .config import ConfigError, NoiseSettings, NuisanceSettings, RunConfig
+from .data import PickSet
+from .forward import predict
+from .parameters import LayerSettings, build_models
+from .prior import Distribution, JointPrior, distribution_from_spec, prior_from_toml_table
+
+
+@dataclass
+class Problem:
+    """Everything needed to evaluate the posterior of one parameterisation.
+
+    Build with :func:`build_problem` (from a run description) or directly.
+    Attributes ``names`` and ``units`` list every free parameter.
+    """
+
+    picks: PickSet
+    layers: LayerSettings
+    prior: JointPrior
+    noise: NoiseSettings = field(default_factory=NoiseSettings)
+    nuisance: NuisanceSettings = field(default_factory=NuisanceSettings)
+    units: str = "m"
+
+    def __post_init__(self):
+        picks = self.picks
+        self.n_layer_params = self.prior.ndim
+        self.nuisance_names: list[str] = []
+        self.nuisance_priors: list[Distribution] = []
+        # ---------------------------------------------------------- S picks need S parameters
+        if self.layers.vpvs_mode == "none" and np.any(picks.wave == "S"):
+            line = int(picks.line_numbers[np.argmax(picks.wave == "S")])
+            raise ConfigError("run description", "model",
+                              f"vpvs_mode = 'none' but {picks.path}, line {line} is an S pick; "
+                              "choose 'per_layer', 'shared' or 'vs'")
+        # ---------------------------------------------------------- event depths and epicentres
+        self._depth_col = np.full(picks.n_sources, -1)
+        self._x_col = np.full(picks.n_sources, -1)
+        self._y_col = np.full(picks.n_sources, -1)
+        for s in np.flatnonzero(~picks.depth_known):
+            spec = self.nuisance.event_depth
+            if spec is None:
+                raise ConfigError("run description", "nuisance",
+                                  f"source {picks.source_names[s]} has no depth in {picks.sources_path}; give "
+                                  "event_depth = { dist = ..., ... } (a prior for unknown source depths)")
+            self._depth_col[s] = self._add(f"event_depth_{picks.source_names[s]}", spec, "nuisance.event_depth")
+        for s in np.flatnonzero(~picks.epicentre_known):
+            for axis, cols in (("x", self._x_col), ("y", self._y_col)):
+                spec = getattr(self.nuisance, f"epicentre_{axis}")
+                if spec is None:
+                    raise ConfigError("run description", "nuisance",
+                                      f"source {picks.source_names[s]} has no {axis} in {picks.sources_path}; "
+                                      f"give epicentre_{axis} = {{ dist = ..., ... }}")
+                cols[s] = self._add(f"event_{axis}_{picks.source_names[s]}", spec, f"nuisance.epicentre_{axis}")
+        self._scale_col = -1
+        if self.noise.scale == "free":
+            self._scale_col = self._add("noise_scale", self.noise.scale_prior, "noise.scale_prior")
+        self.names = list(self.prior.names) + self.nuisance_names
+        self.ndim = len(self.names)
+        # ---------------------------------------------------------- origin times and delays
+        known = picks.origin_time_known
+        self.marginal_origin = bool((~known).any())
+        if self.marginal_origin and self.nuisance.origin_time == "known":
+            s = int(np.argmax(~known))
+            raise ConfigError("run description", "nuisance",
+                              f"source {picks.source_names[s]} has no origin_time in {picks.sources_path}; set "
+                              "origin_time = 'normal' or 'uniform' to marginalise unknown origin times")
+        first_pick = np.full(picks.n_sources, np.inf)
+        np.minimum.at(first_pick, picks.source_index, picks.time)
+        centre = np.where(known, picks.source_origin_time, first_pick - self.nuisance.origin_time_mean)
+        if self.nuisance.origin_time == "uniform":
+            spread = np.where(known, 0.0, 0.5 * self.nuisance.origin_time_width)
+        else:
+            spread = np.where(known, 0.0, self.nuisance.origin_time_sd)
+        kind = np.where(known, "known", self.nuisance.origin_time if self.marginal_origin else "known")
+        self.origin_prior = lk.OriginPrior.build(kind, np.where(np.isfinite(centre), centre, 0.0), spread)
+        self.delays = self.nuisance.receiver_delay_sd > 0 or self.nuisance.source_delay_sd > 0
+        self.plan = None
+        if self.delays:
+            if self.noise.model != "gaussian":
+                raise ConfigError("run description", "nuisance",
+                                  "delay terms are marginalised in closed form for Gaussian noise only; "
+                                  "set [noise] model = 'gaussian' or turn the delays off")
+            groups = [lk.OffsetGroup.origin_times(picks.source_index, self.origin_prior)]
+            if self.nuisance.receiver_delay_sd > 0:
+                groups.append(lk.OffsetGroup("receiver delay", picks.receiver_index, 0.0,
+                                             np.full(picks.n_receivers, self.nuisance.receiver_delay_sd)))
+            if self.nuisance.source_delay_sd > 0:
+                groups.append(lk.OffsetGroup("source delay", picks.source_index, 0.0,
+                                             np.full(picks.n_sources, self.nuisance.source_delay_sd)))
+            self.plan = lk.prepare_linear_gaussian(picks.sigma, groups)
+        self._obs = np.asarray(picks.time, dtype=float)
+        self._sigma = np.asarray(picks.sigma, dtype=float)
+
+    # ------------------------------------------------------------------ helpers
+    def _add(self, name: str, spec, where: str) -> int:
+        dist = distribution_from_spec(spec, where)
+        if not isinstance(dist, Distribution):
+            raise ConfigError("run description", where.split(".")[0], f"{where}: a fixed value is not a prior "
+                              "(give the value in the geometry table instead)")
+        self.nuisance_names.append(name)
+        self.nuisance_priors.append(dist)
+        return self.prior.ndim + len(self.nuisance_names) - 1
+
+    @property
+    def pointwise_kind(self) -> str:
+        """'pick', 'event' or 'total': what one stored log-likelihood value refers to."""
+        if self.delays:
+            return "total"
+        return "event" if self.marginal_origin else "pick"
+
+    def log_prior(self, theta) -> np.ndarray:
+        """Normalised log prior density (B,)."""
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        lp = self.prior.log_prob(theta[:, :self.n_layer_params])
+        for j, dist in enumerate(self.nuisance_priors):
+            lp = lp + dist.logpdf(theta[:, self.n_layer_params + j])
+        return lp
+
+    def bounds(self, tail: float = 1e-4) -> tuple[np.ndarray, np.ndarray]:
+        """Lower and upper bounds (D,) holding all but ``tail`` of each 1-D prior at either end."""
+        dists = [self.prior.priors[n] for n in self.prior.names] + list(self.nuisance_priors)
+        low = np.array([float(d.ppf(tail)) for d in dists])
+        high = np.array([float(d.ppf(1.0 - tail)) for d in dists])
+        return low, high
+
+    def sample_prior(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """``n`` draws from the prior, shape (n, D)."""
+        out = np.empty((n, self.ndim))
+        out[:, :self.n_layer_params] = self.prior.sample(n, rng)
+        for j, dist in enumerate(self.nuisance_priors):
+            out[:, self.n_layer_params + j] = dist.sample(n, rng)
+        return out
+
+    def from_unit_cube(self, u) -> np.ndarray:
+        """Unit cube -> parameters (prior transform for nested sampling)."""
+        u = np.atleast_2d(np.asarray(u, dtype=float))
+        out = np.empty_like(u)
+        out[:, :self.n_layer_params] = self.prior.from_unit_cube(u[:, :self.n_layer_params])
+        for j, dist in enumerate(self.nuisance_priors):
+            out[:, self.n_layer_params + j] = dist.from_unit(u[:, self.n_layer_params + j])
+        return out
+
+    def models(self, theta):
+        """(LayerModel of the valid rows or None, validity mask (B,))."""
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        values = self.prior.values(theta[:, :self.n_layer_params])
+        return build_models(values, self.layers)
+
+    def geometry(self, theta):
+        """Per-pick distance, source depth, receiver depth: (P,) or (B, P) when sampled."""
+        picks = self.picks
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        x = np.asarray(picks.distance, dtype=float)
+        zs = np.asarray(picks.source_depth, dtype=float)
+        zr = np.asarray(picks.receiver_depth, dtype=float)
+        si = picks.source_index
+        if (self._depth_col >= 0).any():
+            z_src = np.broadcast_to(np.asarray(picks.source_z, dtype=float), (theta.shape[0], picks.n_sources)).copy()
+            for s in np.flatnonzero(self._depth_col >= 0):
+                z_src[:, s] = theta[:, self._depth_col[s]]
+            zs = z_src[:, si]
+        if (self._x_col >= 0).any():
+            sx = np.broadcast_to(np.asarray(picks.source_x, dtype=float), (theta.shape[0], picks.n_sources)).copy()
+            sy = np.broadcast_to(np.asarray(picks.source_y, dtype=float), (theta.shape[0], picks.n_sources)).copy()
+            for s in np.flatnonzero(self._x_col >= 0):
+                sx[:, s] = theta[:, self._x_col[s]]
+                sy[:, s] = theta[:, self._y_col[s]]
+            rx = np.asarray(picks.receiver_x, dtype=float)[picks.receiver_index]
+            ry = np.asarray(picks.receiver_y, dtype=float)[picks.receiver_index]
+            x = np.hypot(sx[:, si] - rx, sy[:, si] - ry)
+        return x, zs, zr
+
+    def travel_times(self, theta) -> tuple[np.ndarray, np.ndarray]:
+        """Predicted travel times (B, P) [s] (inf where absent or the model is invalid) and the validity mask."""
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        model, ok = self.models(theta)
+        out = np.full((theta.shape[0], self.picks.n_picks), np.inf)
+        if model is None:
+            return out, ok
+        x, zs, zr = self.geometry(theta[ok])
+        picks = self.picks
+        out[ok] = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr)
+        return out, ok
+
+    def _scale(self, theta):
+        return None if self._scale_col < 0 else theta[:, self._scale_col]
+
+    def log_likelihood(self, theta, pointwise: bool = False):
+        """Log likelihood (B,), or pointwise values (B, n) when ``pointwise`` (see :attr:`pointwise_kind`).
+
+        Rows with an invalid model or an absent arrival get -inf.
+        """
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        pred, ok = self.travel_times(theta)
+        n_points = {"pick": self.picks.n_picks, "event": self.picks.n_sources, "total": 1}[self.pointwise_kind]
+        out = np.full((theta.shape[0], n_points), -np.inf)
+        if ok.any():
+            out[ok] = self._pointwise(pred[ok], self._scale(theta[ok]))
+        return out if pointwise else out.sum(axis=1)
+
+    def _pointwise(self, pred, scale):
+        nz = self.noise
+        obs, sigma = self._obs, self._sigma
+        if self.delays:
+            resid = np.where(np.isfinite(pred), obs - pred, -np.inf)
+            return lk.linear_gaussian_marginal(resid, self.plan, scale=scale)[:, None]
+        if self.marginal_origin:
+            if nz.model == "gaussian":
+                return lk.marginal_origin_gaussian(pred, obs, sigma, self.picks.source_index, self.origin_prior,
+                                                   scale=scale)
+            noise = "mixture" if nz.model == "outlier_mixture" else "student_t"
+            return lk.marginal_origin_quadrature(pred, obs, sigma, self.picks.source_index, self.origin_prior,
+                                                 noise=noise, fraction=nz.outlier_fraction,
+                                                 outlier_sigma=nz.outlier_sigma, dof=nz.dof, scale=scale)
+        tt_obs = np.asarray(self.picks.travel_time, dtype=float)
+        if nz.model == "gaussian":
+            return lk.gaussian(pred, tt_obs, sigma, scale=scale)
+        if nz.model == "outlier_mixture":
+            return lk.outlier_mixture(pred, tt_obs, sigma, nz.outlier_fraction, nz.outlier_sigma, scale=scale)[0]
+        return lk.student_t(pred, tt_obs, sigma, nz.dof, scale=scale)[0]
+
+    def outlier_probability(self, theta) -> np.ndarray | None:
+        """Posterior outlier probability (B, P) for the mixture noise model (known origins), else None."""
+        if self.noise.model != "outlier_mixture" or self.marginal_origin:
+            return None
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        pred, ok = self.travel_times(theta)
+        out = np.full(pred.shape, np.nan)
+        if ok.any():
+            out[ok] = lk.outlier_mixture(pred[ok], np.asarray(self.picks.travel_time, dtype=float), self._sigma,
+                                         self.noise.outlier_fraction, self.noise.outlier_sigma,
+                                         scale=self._scale(theta[ok]))[1]
+        return out
+
+    def log_prob(self, theta) -> np.ndarray:
+        """Unnormalised log posterior (B,): log prior + log likelihood, -inf outside the prior."""
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        lp = self.log_prior(theta)
+        good = np.isfinite(lp)
+        out = np.full(theta.shape[0], -np.inf)
+        if good.any():
+            ll = self.log_likelihood(theta[good])
+            out[good] = lp[good] + ll
+        return out
+
+    def parameter_units(self) -> dict[str, str]:
+        """Unit of every free parameter."""
+        from .prior import parameter_unit
+
+        out = {}
+        for name in self.names:
+            if name.startswith("event_"):
+                out[name] = self.units
+            elif name == "noise_scale":
+                out[name] = "1"
+            else:
+                out[name] = parameter_unit(name, self.units) or "1"
+        return out
+
+
+def build_problem(config: RunConfig, picks: PickSet | None = None) -> Problem:
+    """Problem of a run description (reads the picks unless given)."""
+    from .data import read_picks
+
+    if picks is None:
+        picks = read_picks(config.picks, config.sources, config.receivers)
+    table = {"prior": config.prior}
+    if config.constraints:
+        table["constraints"] = config.constraints
+    try:
+        prior = prior_from_toml_table(table, config.layers.total_layers, units=config.units,
+                                      gradient_layers=sorted(config.layers.gradient_layers),
+                                      vpvs_mode=config.layers.vpvs_mode,
+                                      depth_parameter=config.layers.depth_parameter)
+    except ValueError as exc:
+        raise ConfigError(config.path, "prior", str(exc)) from None
+    return Problem(picks=picks, layers=config.layers, prior=prior, noise=config.noise, nuisance=config.nuisance,
+                   units=config.units)

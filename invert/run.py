@@ -1,0 +1,410 @@
+"""One inversion run: run description -> samples, diagnostics and files in a folder.
+
+Folder layout (docs/outputs.md): ``posterior.nc`` (ArviZ InferenceData),
+``summary.csv`` / ``summary.json``, ``convergence.json`` / ``convergence.txt``,
+``config.toml`` (the run description as given) and ``config_resolved.json``
+(every setting with its default filled in), ``checkpoint.h5`` (to resume).
+Every file is written to a temporary name and renamed into place.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import hashlib
+import io
+import json
+import os
+import sys
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .config import RunConfig, load_config
+from .data import (PickSet, offset_message, offset_mismatch, read_picks, reciprocal_mismatch,
+                   reciprocity_message)
+from .problem import Problem, build_problem
+from .sample import (ConvergenceReport, SamplerResult, convergence_report, initial_around, initial_from_prior,
+                     run_ensembles)
+
+#: Most (draw x point) values stored in the pointwise log-likelihood group.
+MAX_POINTWISE_VALUES = 4_000_000
+#: Draws of the prior stored for prior-vs-posterior comparisons.
+PRIOR_DRAWS = 2000
+
+
+@dataclass
+class RunOutput:
+    """What a run produced (also on disk in ``folder``)."""
+
+    folder: Path
+    config: RunConfig
+    problem: Problem
+    result: SamplerResult
+    report: ConvergenceReport
+    summary: list[dict]
+
+    @property
+    def converged(self) -> bool:
+        return self.report.converged
+
+
+def _say(msg: str, quiet: bool) -> None:
+    if not quiet:
+        print(msg, flush=True)
+
+
+def write_atomic(path: Path, data: bytes | str) -> None:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and a rename."""
+    path = Path(path)
+    mode = "wb" if isinstance(data, bytes) else "w"
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, mode) as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def fingerprint(config: RunConfig) -> str:
+    """Hash of everything that defines the posterior (data files, model, prior, noise, nuisance)."""
+    h = hashlib.sha256()
+    for p in (config.picks, config.sources, config.receivers):
+        if p is not None:
+            h.update(Path(p).read_bytes())
+    for part in (config.layers, config.noise, config.nuisance):
+        h.update(repr(part).encode())
+    h.update(json.dumps(config.prior, sort_keys=True, default=str).encode())
+    h.update(json.dumps(config.constraints, sort_keys=True, default=str).encode())
+    h.update(config.units.encode())
+    return h.hexdigest()[:16]
+
+
+def optimum_start(problem: Problem, config: RunConfig, rng: np.random.Generator, quiet: bool = True):
+    """Starting points near the posterior mode, found independently for every ensemble.
+
+    Each ensemble runs its own differential evolution (Storn & Price, J. Global
+    Optim. 11, 1997; scipy's implementation, all candidates evaluated in one
+    batched call) over the central 99.98% of every prior, from its own seed,
+    then starts its walkers in a small ball around what it found. Ensembles
+    that land in different modes disagree, and R-hat across ensembles says so.
+    """
+    from scipy.optimize import differential_evolution
+
+    s = config.sampler
+    low, high = problem.bounds()
+    width = high - low
+    out = np.empty((s.ensembles, s.walkers, problem.ndim))
+
+    def cost(x):
+        lp = problem.log_prob(np.atleast_2d(x.T))
+        return np.where(np.isfinite(lp), -lp, 1e300)
+
+    for e in range(s.ensembles):
+        seed = int(rng.integers(2**31))
+        res = differential_evolution(cost, list(zip(low, high)), vectorized=True, updating="deferred", seed=seed,
+                                     maxiter=300, popsize=12, tol=1e-8, polish=False, init="sobol")
+        _say(f"ensemble {e + 1}: starting near log-posterior {-res.fun:.2f} "
+             f"({res.nfev} evaluations of differential evolution)", quiet)
+        out[e] = initial_around(res.x, 1e-4 * width, 1, s.walkers, rng, log_prob=problem.log_prob)[0]
+    return out
+
+
+def starting_points(problem: Problem, config: RunConfig, rng: np.random.Generator, quiet: bool = True):
+    """Initial walker positions (ensembles, walkers, D) as chosen by ``[sampler] start``."""
+    s = config.sampler
+    if s.start == "classic":
+        point = classic_start(problem, quiet=quiet)
+        if point is not None:
+            scale = np.maximum(np.abs(point) * 0.02, 1e-6)
+            return initial_around(point, scale, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
+        _say("classic start unavailable for these data; starting near the optimum instead", quiet)
+        return optimum_start(problem, config, rng, quiet)
+    if s.start == "optimum":
+        return optimum_start(problem, config, rng, quiet)
+    return initial_from_prior(problem.sample_prior, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
+
+
+def classic_start(problem: Problem, quiet: bool = True):
+    """A starting point from the intercept-time method, or None where it does not apply."""
+    try:
+        from .classic import starting_point
+    except ImportError:
+        return None
+    try:
+        return starting_point(problem, quiet=quiet)
+    except (ValueError, RuntimeError) as exc:
+        _say(f"classic estimate failed: {exc}", quiet)
+        return None
+
+
+def data_checks(picks: PickSet) -> list[str]:
+    """Plain-language results of the reciprocity and same-offset checks (empty when nothing to say)."""
+    out = []
+    pairs = reciprocal_mismatch(picks)
+    if pairs:
+        out.append(reciprocity_message(pairs))
+    same = offset_mismatch(picks)
+    if same:
+        out.append(offset_message(same))
+    return [m for m in out if m]
+
+
+def prepare_folder(folder: Path, resume: bool, overwrite: bool) -> None:
+    """Create the output folder; refuse to mix a new run into an old one."""
+    folder = Path(folder)
+    if folder.exists() and any(folder.iterdir()) and not resume:
+        if not overwrite:
+            raise FileExistsError(f"output folder {folder} already holds a run; use --resume to continue it or "
+                                  "--overwrite to start again (or change [output] folder)")
+        for name in ("checkpoint.h5", "posterior.nc", "summary.csv", "summary.json", "convergence.json",
+                     "convergence.txt", "config.toml", "config_resolved.json"):
+            if (folder / name).exists():
+                (folder / name).unlink()
+    folder.mkdir(parents=True, exist_ok=True)
+
+
+def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False, progress: bool = True,
+                  quiet: bool = False, steps: int | None = None) -> RunOutput:
+    """Run the inversion described by ``config_path`` and write its folder.
+
+    Parameters
+    ----------
+    config_path : path
+        Run description (TOML; docs/config.md).
+    resume : bool
+        Continue from the folder's checkpoint (same data, prior and settings).
+    overwrite : bool
+        Replace the results of an earlier run in the output folder.
+    progress : bool
+        Show a progress bar.
+    quiet : bool
+        Print nothing but errors.
+    steps : int, optional
+        Override ``[sampler] steps``.
+    """
+    config = load_config(config_path)
+    if steps is not None:
+        config = dataclasses.replace(config, sampler=dataclasses.replace(config.sampler, steps=int(steps)))
+    picks = read_picks(config.picks, config.sources, config.receivers)
+    _say(f"Data: {picks.describe()}", quiet)
+    for message in data_checks(picks):
+        _say(message, quiet)
+    problem = build_problem(config, picks)
+    _say(f"Model: {config.layers.n_layers} layer(s) over a half-space; {problem.ndim} free parameters: "
+         f"{', '.join(problem.names)}", quiet)
+    folder = Path(config.output)
+    prepare_folder(folder, resume, overwrite)
+    s = config.sampler
+    rng = np.random.default_rng(s.seed)
+    initial = None if resume else starting_points(problem, config, rng, quiet=quiet)
+    result = run_ensembles(problem.log_prob, initial, s.steps, seed=s.seed, checkpoint=folder / "checkpoint.h5",
+                           resume=resume, progress=progress and not quiet,
+                           checkpoint_every=s.checkpoint_every, until=True if s.until_converged else None,
+                           max_steps=s.max_steps if s.until_converged else None,
+                           parameter_names=problem.names, fingerprint=fingerprint(config))
+    burn = s.burn if not s.until_converged else None
+    report = convergence_report(result, burn=burn, thin=s.thin)
+    summary = write_outputs(folder, config, problem, result, report, rng)
+    _say(report.summary(), quiet)
+    _say(f"Results written to {folder}/ (posterior.nc, summary.csv, convergence.txt); "
+         f"make the report with: invert report {folder}", quiet)
+    return RunOutput(folder, config, problem, result, report, summary)
+
+
+# ----------------------------------------------------------------------------- outputs
+def kept_samples(result: SamplerResult, burn: int, thin: int) -> np.ndarray:
+    """Posterior samples (chains = ensembles x walkers, draws, D) after burn-in and thinning."""
+    chain = result.chain[:, burn::thin]  # (E, S, W, D)
+    e, n, w, d = chain.shape
+    return np.transpose(chain, (0, 2, 1, 3)).reshape(e * w, n, d)
+
+
+def derived_values(problem: Problem, flat: np.ndarray) -> dict[str, np.ndarray]:
+    """Interface depths / thicknesses and S velocities implied by samples (S, D)."""
+    model, ok = problem.models(flat)
+    out: dict[str, np.ndarray] = {}
+    n = problem.layers.n_layers
+    full = {}
+    if model is not None:
+        full["depth"] = np.full((flat.shape[0], n), np.nan)
+        full["depth"][ok] = model.interface_depths
+        full["thickness"] = np.full((flat.shape[0], n), np.nan)
+        full["thickness"][ok] = model.thickness
+        full["vs"] = np.full((flat.shape[0], n + 1), np.nan)
+        full["vs"][ok] = model.vs
+    other = "thickness" if problem.layers.depth_parameter else "depth"
+    for k in range(1, n + 1):
+        if other in full:
+            out[f"{other}_{k}"] = full[other][:, k - 1]
+    if problem.layers.vpvs_mode in ("per_layer", "shared") and "vs" in full:
+        for k in range(1, n + 2):
+            out[f"vs_{k}"] = full["vs"][:, k - 1]
+    return out
+
+
+def build_inference_data(problem: Problem, config: RunConfig, result: SamplerResult, burn: int, thin: int,
+                         rng: np.random.Generator):
+    """ArviZ InferenceData with posterior, log likelihood, prior, observed data and posterior predictive."""
+    import arviz as az
+
+    samples = kept_samples(result, burn, thin)  # (C, N, D)
+    c, n, d = samples.shape
+    posterior = {name: samples[:, :, i] for i, name in enumerate(problem.names)}
+    flat = samples.reshape(c * n, d)
+    derived = derived_values(problem, flat)
+    posterior.update({k: v.reshape(c, n) for k, v in derived.items()})
+    # pointwise log likelihood and posterior predictive on a thinned subset of draws
+    n_points = {"pick": problem.picks.n_picks, "event": problem.picks.n_sources, "total": 1}[problem.pointwise_kind]
+    step = max(1, int(np.ceil(c * n * max(n_points, problem.picks.n_picks) / MAX_POINTWISE_VALUES)))
+    sub = samples[:, ::step]
+    cs, ns, _ = sub.shape
+    sub_flat = sub.reshape(cs * ns, d)
+    loglik = problem.log_likelihood(sub_flat, pointwise=True).reshape(cs, ns, n_points)
+    pred, _ = problem.travel_times(sub_flat)
+    sigma = np.asarray(problem.picks.sigma, dtype=float)
+    scale = sub_flat[:, problem.names.index("noise_scale")][:, None] if "noise_scale" in problem.names else 1.0
+    replicated = pred + rng.standard_normal(pred.shape) * sigma * scale
+    offset = np.where(problem.picks.origin_time_known[problem.picks.source_index],
+                      problem.picks.source_origin_time[problem.picks.source_index], np.nan)
+    prior_draws = problem.sample_prior(PRIOR_DRAWS, rng)
+    prior = {name: prior_draws[None, :, i] for i, name in enumerate(problem.names)}
+    prior.update({k: v[None, :] for k, v in derived_values(problem, prior_draws).items()})
+    point_dim = {"pick": "pick", "event": "event", "total": "all"}[problem.pointwise_kind]
+    picks = problem.picks
+    idata = az.from_dict(
+        posterior=posterior,
+        log_likelihood={"arrival_time": loglik},
+        posterior_predictive={"travel_time": replicated.reshape(cs, ns, -1),
+                              "predicted_travel_time": pred.reshape(cs, ns, -1)},
+        prior=prior,
+        observed_data={"arrival_time": np.asarray(picks.time, dtype=float)},
+        constant_data={"sigma": sigma, "distance": np.asarray(picks.distance, dtype=float),
+                       "source_depth": np.asarray(picks.source_depth, dtype=float),
+                       "receiver_depth": np.asarray(picks.receiver_depth, dtype=float),
+                       "origin_time": offset,
+                       "line": np.asarray(picks.line_numbers, dtype=int)},
+        dims={"arrival_time": [point_dim],
+              "travel_time": ["pick"], "predicted_travel_time": ["pick"],
+              "sigma": ["pick"], "distance": ["pick"], "source_depth": ["pick"], "receiver_depth": ["pick"],
+              "origin_time": ["pick"], "line": ["pick"]},
+        attrs={"title": config.title, "units": config.units, "inference_library": "emcee",
+               "pointwise_log_likelihood": problem.pointwise_kind,
+               "pointwise_draw_stride": step, "burn": burn, "thin": thin},
+    )
+    # observed data lives per pick even when the likelihood is per event
+    idata.observed_data = idata.observed_data.rename({list(idata.observed_data.dims)[0]: "pick"})
+    for group in ("observed_data", "constant_data", "posterior_predictive"):
+        ds = getattr(idata, group)
+        ds.coords["pick"] = np.arange(picks.n_picks)
+        ds.coords["source"] = ("pick", np.asarray(picks.source_id, dtype=str))
+        ds.coords["receiver"] = ("pick", np.asarray(picks.receiver_id, dtype=str))
+        ds.coords["wave"] = ("pick", np.asarray(picks.wave, dtype=str))
+        ds.coords["branch"] = ("pick", np.asarray(picks.branch, dtype=str))
+        ds.coords["interface"] = ("pick", np.asarray(picks.interface, dtype=int))
+    units = problem.parameter_units()
+    for name in problem.names:
+        idata.posterior[name].attrs["units"] = units[name]
+    return idata
+
+
+def summary_rows(idata, problem: Problem, report: ConvergenceReport) -> list[dict]:
+    """Summary table rows: every parameter and derived depth/velocity with intervals and diagnostics."""
+    units = problem.parameter_units()
+    idx = {n: i for i, n in enumerate(report.parameter_names)}
+    rows = []
+    for name in idata.posterior.data_vars:
+        x = np.asarray(idata.posterior[name]).ravel()
+        x = x[np.isfinite(x)]
+        if x.size == 0:
+            continue
+        q = np.percentile(x, [2.5, 16, 50, 84, 97.5])
+        family = name.rsplit("_", 1)[0]
+        unit = units.get(name) or {"depth": problem.units, "thickness": problem.units,
+                                   "vs": f"{problem.units}/s"}.get(family, "")
+        row = {"parameter": name, "unit": unit, "kind": "sampled" if name in idx else "derived",
+               "mean": float(x.mean()), "median": float(q[2]), "sd": float(x.std(ddof=1)) if x.size > 1 else 0.0,
+               "low_68": float(q[1]), "high_68": float(q[3]), "low_95": float(q[0]), "high_95": float(q[4]),
+               "rhat": float(report.rhat[idx[name]]) if name in idx else None,
+               "ess_bulk": float(report.ess_bulk[idx[name]]) if name in idx else None,
+               "ess_tail": float(report.ess_tail[idx[name]]) if name in idx else None}
+        rows.append(row)
+    return rows
+
+
+def _csv(rows: list[dict]) -> str:
+    buf = io.StringIO()
+    writer = csv.DictWriter(buf, fieldnames=list(rows[0].keys()), lineterminator="\n")
+    writer.writeheader()
+    for r in rows:
+        writer.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v)) for k, v in r.items()})
+    return buf.getvalue()
+
+
+def _jsonable(obj):
+    if dataclasses.is_dataclass(obj):
+        return {k: _jsonable(v) for k, v in dataclasses.asdict(obj).items()}
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        return float(obj) if np.isfinite(obj) else str(float(obj))
+    if isinstance(obj, np.integer):
+        return int(obj)
+    return obj
+
+
+def convergence_dict(report: ConvergenceReport) -> dict:
+    """The convergence report as plain JSON-friendly values."""
+    return _jsonable({
+        "converged": report.converged, "verdict": report.verdict, "burn": report.burn, "thin": report.thin,
+        "kept_steps": report.kept_steps,
+        "parameters": {n: {"rhat": report.rhat[i], "ess_bulk": report.ess_bulk[i], "ess_tail": report.ess_tail[i],
+                           "tau": report.tau[i], "run_over_tau": report.tau_multiple[i]}
+                       for i, n in enumerate(report.parameter_names)},
+        "acceptance": report.acceptance, "stuck_walkers": [list(s) for s in report.stuck],
+        "failures": list(report.failures), "notes": list(report.notes),
+        "targets": dataclasses.asdict(report.targets),
+    })
+
+
+def write_outputs(folder: Path, config: RunConfig, problem: Problem, result: SamplerResult,
+                  report: ConvergenceReport, rng: np.random.Generator) -> list[dict]:
+    """Write every output file of a run atomically; returns the summary rows."""
+    folder = Path(folder)
+    idata = build_inference_data(problem, config, result, report.burn, report.thin, rng)
+    fd, tmp = tempfile.mkstemp(dir=folder, prefix=".posterior.nc.", suffix=".tmp")
+    os.close(fd)
+    try:
+        idata.to_netcdf(tmp)
+        os.replace(tmp, folder / "posterior.nc")
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    rows = summary_rows(idata, problem, report)
+    write_atomic(folder / "summary.csv", _csv(rows))
+    write_atomic(folder / "summary.json", json.dumps(_jsonable({"title": config.title, "units": config.units,
+                                                                "converged": report.converged,
+                                                                "rows": rows}), indent=2))
+    write_atomic(folder / "convergence.json", json.dumps(convergence_dict(report), indent=2))
+    write_atomic(folder / "convergence.txt", report.summary() + "\n")
+    write_atomic(folder / "config.toml", Path(config.path).read_bytes())
+    resolved = {k: v for k, v in dataclasses.asdict(config).items() if k != "raw"}
+    resolved["fingerprint"] = fingerprint(config)
+    resolved["parameters"] = problem.names
+    resolved["python"] = sys.version.split()[0]
+    write_atomic(folder / "config_resolved.json", json.dumps(_jsonable(resolved), indent=2))
+    return rows
+
