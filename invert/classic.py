@@ -56,6 +56,8 @@ class InterceptTimeEstimate:
         Index (into the offset-sorted picks) of the first pick of each segment.
     segment : ndarray of int (picks,)
         Segment (1-based) of every pick, in the order the picks were given.
+    offsets : ndarray (picks,)
+        The offsets as given [length].
     rms : float
         Root-mean-square misfit of the fitted lines [s].
     warnings : tuple of str

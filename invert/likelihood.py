@@ -53,6 +53,9 @@ DEFAULT_NODES = 64
 #: A normal origin prior is integrated over its mean +- (NORMAL_REACH sd + |offset of the mode|).
 NORMAL_REACH = 40.0
 
+#: Half-width of the central quadrature panel in u (t = c + a sinh u): |t - c| <= sinh(3) a = 10 a.
+CENTRAL_PANEL = 3.0
+
 #: Inflation factors of the noise sd for the annealed robust location search (last ones = 1).
 _ANNEAL = (100.0, 30.0, 10.0, 3.0, 1.0, 1.0, 1.0, 1.0)
 
@@ -570,6 +573,35 @@ def _log_cosh(u: np.ndarray) -> np.ndarray:
     return a + np.log1p(np.exp(-2.0 * a)) - np.log(2.0)
 
 
+def _composite_rule(u_lo: np.ndarray, u_hi: np.ndarray, n_nodes: int):
+    """Gauss-Legendre nodes on three panels of [u_lo, u_hi]: (-inf, -U], [-U, U], [U, inf).
+
+    Returns a function j -> (u_j, log weight_j), arrays shaped like ``u_lo``;
+    panels cut off by the limits get weight 0 (log -inf).
+    """
+    inner = CENTRAL_PANEL
+    n_centre = n_nodes - 2 * (n_nodes // 3)
+    n_side = n_nodes // 3
+    edges = [(u_lo, np.clip(-inner, u_lo, u_hi)), (np.clip(-inner, u_lo, u_hi), np.clip(inner, u_lo, u_hi)),
+             (np.clip(inner, u_lo, u_hi), u_hi)]
+    counts = (n_side, n_centre, n_side)
+    table = []
+    for (a, b), n in zip(edges, counts):
+        if n == 0:
+            continue
+        x, w = np.polynomial.legendre.leggauss(n)
+        mid, half = 0.5 * (a + b), 0.5 * (b - a)
+        with np.errstate(divide="ignore"):
+            log_half = np.log(half)
+        table += [(mid, half, log_half, xi, np.log(wi)) for xi, wi in zip(x, w)]
+
+    def rule(j):
+        mid, half, log_half, xi, log_wi = table[j]
+        return mid + half * xi, log_half + log_wi
+
+    return rule
+
+
 def marginal_origin_quadrature(pred, obs, sigma, event, prior: OriginPrior, noise: str = "mixture", *,
                                fraction=None, outlier_sigma=None, dof=None, scale=None,
                                n_nodes: int = DEFAULT_NODES, return_origin=False, return_pick_weights=False):
@@ -659,21 +691,18 @@ def marginal_origin_quadrature(pred, obs, sigma, event, prior: OriginPrior, nois
     upper = np.where(code == 1, NORMAL_REACH * spread + np.abs(centre), spread)
     u_lo = np.where(free, np.arcsinh((lower - centre) / width), 0.0)
     u_hi = np.where(free, np.arcsinh((upper - centre) / width), 0.0)
-    u_mid = 0.5 * (u_lo + u_hi)
-    u_half = 0.5 * (u_hi - u_lo)
-    x_nodes, w_nodes = np.polynomial.legendre.leggauss(int(n_nodes))
+    rule = _composite_rule(u_lo, u_hi, int(n_nodes))
     log_prior_const = np.where(code == 1, -np.log(spread) - 0.5 * LOG_2PI,
                                np.where(code == 2, -np.log(2.0 * np.maximum(spread, 1e-300)), 0.0))
     inv_var_prior = np.where(code == 1, 1.0 / spread ** 2, 0.0)
+    log_trivial = -np.log(float(n_nodes))   # known / empty events: n equal weights summing to 1
 
     def node(j):
-        u = u_mid + u_half * x_nodes[j]
+        u, log_wu = rule(j)
         t = centre + width * np.sinh(u)
-        with np.errstate(divide="ignore"):
-            log_w = np.where(free, np.log(w_nodes[j] * u_half) + np.log(width) + _log_cosh(u)
-                             + log_prior_const - 0.5 * t * t * inv_var_prior,
-                             np.log(w_nodes[j] / w_nodes.sum()))
-        return t, log_w
+        log_w = np.where(free, log_wu + np.log(width) + _log_cosh(u) + log_prior_const
+                         - 0.5 * t * t * inv_var_prior, log_trivial)
+        return np.where(free, t, 0.0), log_w
 
     # 3. streaming log-sum-exp over nodes (also first and second moments of t)
     run_max = np.full((n_walkers, prior.n_events), -np.inf)

@@ -90,7 +90,7 @@ def _truth_staircase(truth: LayerModel, wave: str, z_max: float) -> tuple[np.nda
 
 def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[str] | None = None,
                         truth: LayerModel | None = None, doi=None, length_unit: str = "m",
-                        n_velocity_bins: int = 80, path=None) -> Figure:
+                        n_velocity_bins: int = 80, max_models: int = 20000, path=None) -> Figure:
     """Posterior density of velocity against depth, with interface-depth histograms.
 
     Parameters
@@ -110,6 +110,8 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
         Unit of depth; velocities are in ``length_unit``/s.
     n_velocity_bins : int
         Velocity bins of the density image.
+    max_models : int
+        Larger batches are thinned to this many evenly spaced models (memory).
     path : str or Path, optional
         Write the figure there as PNG.
 
@@ -129,6 +131,15 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     waves = tuple(str(w).upper() for w in waves)
     if truth is not None and truth.n_models != 1:
         raise ValueError(f"truth: expected one model, got a batch of {truth.n_models}")
+    n_total = model.n_models
+    if doi is not None:
+        doi = np.asarray(doi, dtype=float)
+        if doi.shape != (n_total,):
+            raise ValueError(f"doi: expected one depth per model ({n_total}), got shape {doi.shape}")
+    if n_total > max_models:
+        keep = np.linspace(0, n_total - 1, max_models).round().astype(int)
+        model = model.take(keep)
+        doi = None if doi is None else doi[keep]
     n_if = model.n_layers - 1
     n_panels = len(waves) + (1 if n_if else 0)
     fig = _figure(3.4 * n_panels + 1.2, 6.8)
@@ -137,12 +148,7 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     axes = fig.subplots(1, n_panels, sharey=True, gridspec_kw={"width_ratios": widths})
     axes = np.atleast_1d(axes)
     z_edges = np.clip(_edges(z), z[0], z[-1])
-    doi_median = None
-    if doi is not None:
-        doi = np.asarray(doi, dtype=float)
-        if doi.shape != (model.n_models,):
-            raise ValueError(f"doi: expected one depth per model ({model.n_models}), got shape {doi.shape}")
-        doi_median = float(np.median(doi))
+    doi_median = None if doi is None else float(np.median(doi))
     vel_unit = f"{length_unit}/s"
     image = None
     for ax, wave in zip(axes, waves):
@@ -199,7 +205,8 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     fig.legend(handles=handles, loc="outside lower center", ncol=3, fontsize=8)
     fig.colorbar(image, ax=list(axes), location="right", fraction=0.03, pad=0.01,
                  label="fraction of models per velocity bin (at each depth)")
-    fig.suptitle(f"Velocity–depth posterior ({model.n_models} models)")
+    shown = f"{model.n_models} models" if model.n_models == n_total else f"{model.n_models} of {n_total} models"
+    fig.suptitle(f"Velocity–depth posterior ({shown})")
     return _finish(fig, path)
 
 

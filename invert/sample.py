@@ -32,7 +32,7 @@ import math
 import os
 import tempfile
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Sequence
 
@@ -122,8 +122,10 @@ class ConvergenceReport:
     Per-parameter arrays have shape (parameters,). ``rhat`` is the larger of
     ``rhat_walkers`` (every walker of every ensemble a chain) and
     ``rhat_ensembles`` (every ensemble a chain); ``ess_bulk``/``ess_tail`` use
-    every walker as a chain; ``tau`` is the largest over ensembles of emcee's
-    integrated autocorrelation time [steps]. See :func:`convergence_report`.
+    every walker as a chain; ``tau`` [steps] is the largest of emcee's integrated
+    autocorrelation time of each ensemble (``tau_per_ensemble``, (ensembles,
+    parameters)) and of the walker-average series (``tau_walker_mean``). See
+    :func:`convergence_report`.
     """
 
     parameter_names: tuple[str, ...]
@@ -137,6 +139,7 @@ class ConvergenceReport:
     ess_tail: np.ndarray
     tau: np.ndarray
     tau_per_ensemble: np.ndarray
+    tau_walker_mean: np.ndarray
     acceptance: np.ndarray
     acceptance_per_walker: np.ndarray
     stuck: tuple[tuple[int, int, str], ...]
@@ -838,9 +841,11 @@ def convergence_report(result: SamplerResult, burn: int | None = None, thin: int
     of (b) are the early and late halves of the run. Bulk and tail ESS use
     layout (a), as arviz does for emcee output; it treats walkers of one
     ensemble as independent, which they are not, so it is checked together with
-    the run length in autocorrelation times. The autocorrelation time is emcee's
-    ``integrated_time`` (Foreman-Mackey et al. 2013; per-walker
-    autocorrelations averaged, ``c=5``, ``tol=0``) for each ensemble, largest kept.
+    the run length in autocorrelation times. The autocorrelation time is the
+    largest of emcee's ``integrated_time`` (``c=5``, ``tol=0``) for each
+    ensemble (per-walker autocorrelations averaged, as emcee does) and for the
+    walker-average series of the ensembles (the definition of Goodman & Weare,
+    CAMCoS 5, 2010, which also counts correlation between walkers).
 
     Parameters
     ----------
@@ -891,11 +896,16 @@ def convergence_report(result: SamplerResult, burn: int | None = None, thin: int
         rhat = np.where(np.isnan(rhat_w) | np.isnan(rhat_e), np.nan, np.fmax(rhat_w, rhat_e))
 
     tau_e = np.full((n_ens, n_dim), np.nan)
+    tau_mean = np.full(n_dim, np.nan)
     if n_draws >= 2:
         with np.errstate(all="ignore"):
             for e in range(n_ens):
                 tau_e[e] = thin * integrated_time(kept[e], c=5, tol=0)
-    tau = np.where(np.isnan(tau_e).any(axis=0), np.nan, np.max(tau_e, axis=0))
+            # walker-average series of each ensemble (Goodman & Weare 2010): includes the
+            # correlation between walkers that the per-walker estimate leaves out
+            tau_mean = thin * integrated_time(kept.mean(axis=2).transpose(1, 0, 2), c=5, tol=0)
+    every = np.vstack([tau_e, tau_mean[None, :]])
+    tau = np.where(np.isnan(every).any(axis=0), np.nan, np.max(every, axis=0))
 
     acc_w = result.accepted[:, burn:].mean(axis=1)
     acc = acc_w.mean(axis=1)
@@ -947,7 +957,7 @@ def convergence_report(result: SamplerResult, burn: int | None = None, thin: int
         notes.append(f"{low_walkers} walker(s) accept fewer than {lo:g} of their proposals")
 
     return ConvergenceReport(names, burn, thin, kept_steps, rhat, rhat_w, rhat_e, ess_b, ess_t, tau, tau_e,
-                             acc, acc_w, tuple(stuck), tuple(failures), tuple(notes), targets)
+                             tau_mean, acc, acc_w, tuple(stuck), tuple(failures), tuple(notes), targets)
 
 
 def _arviz_stat(fn, draws: np.ndarray, **kwargs) -> np.ndarray:
