@@ -724,8 +724,12 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
     return Arrivals(time, p, code, iface, deep)
 
 
-def predict(model: LayerModel, wave, branch, interface, distance, source_depth, receiver_depth) -> np.ndarray:
+def predict(model: LayerModel, wave, branch, interface, distance, source_depth, receiver_depth, *,
+            return_deepest: bool = False):
     """Times [s] (models, picks) for picks of mixed wave, branch and interface.
+
+    With ``return_deepest`` also the deepest point of every ray [length]
+    (models, picks), for the depth of investigation.
 
     Picks sharing (wave, branch, interface) are computed in one batched call.
     ``wave`` holds 'P'/'S', ``branch`` 'first'/'direct'/'head'/'reflection',
@@ -738,6 +742,7 @@ def predict(model: LayerModel, wave, branch, interface, distance, source_depth, 
     branch = np.broadcast_to(np.asarray(branch), (n,))
     interface = np.broadcast_to(np.asarray(interface, dtype=int), (n,))
     out = np.empty((model.n_models, n))
+    deep = np.empty((model.n_models, n)) if return_deepest else None
     keys = np.char.add(np.char.add(wave.astype(str), "|"),
                        np.char.add(np.char.add(branch.astype(str), "|"), interface.astype(str)))
     for key in np.unique(keys):
@@ -747,4 +752,6 @@ def predict(model: LayerModel, wave, branch, interface, distance, source_depth, 
         arr = travel_times(model, w, x[:, sel], zs[:, sel], zr[:, sel], branch=b,
                            interface=k if b in ("head", "reflection") else None)
         out[:, sel] = arr.time
-    return out
+        if return_deepest:
+            deep[:, sel] = arr.deepest
+    return (out, deep) if return_deepest else out

@@ -196,6 +196,24 @@ class Problem:
         out[ok] = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr)
         return out, ok
 
+    def deepest_points(self, theta) -> np.ndarray:
+        """Deepest point reached by any modelled ray, per row (B,) [length]; NaN for invalid rows.
+
+        The depth of investigation of each posterior sample: structure below
+        it is seen by no pick and is constrained by the prior alone.
+        """
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        model, ok = self.models(theta)
+        out = np.full(theta.shape[0], np.nan)
+        if model is None:
+            return out
+        x, zs, zr = self.geometry(theta[ok])
+        picks = self.picks
+        _, deep = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, return_deepest=True)
+        with np.errstate(invalid="ignore"):
+            out[ok] = np.nanmax(np.where(np.isfinite(deep), deep, -np.inf), axis=1)
+        return out
+
     def _scale(self, theta):
         return None if self._scale_col < 0 else theta[:, self._scale_col]
 
