@@ -41,6 +41,7 @@ import h5py
 import numpy as np
 from emcee.backends import Backend
 from emcee.ensemble import walkers_independent
+from emcee.moves import RedBlueMove
 from emcee.state import State
 
 __all__ = [
@@ -643,8 +644,8 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
     n_ens, n_walkers, n_dim = initial.shape
     if n_ens < 1 or n_dim < 1:
         raise ValueError(f"initial must have at least one ensemble and one parameter, got {initial.shape}")
-    if moves is None and n_walkers < 2 * n_dim:
-        raise ValueError(f"the stretch move needs at least 2 x parameters = {2 * n_dim} walkers per ensemble, "
+    if _ensemble_moves(moves) and n_walkers < 2 * n_dim:
+        raise ValueError(f"the ensemble moves need at least 2 x parameters = {2 * n_dim} walkers per ensemble, "
                          f"got {n_walkers}")
     if not np.all(np.isfinite(initial)):
         raise ValueError("initial positions contain NaN or infinite values")
@@ -797,6 +798,18 @@ def _progress_bar(show: bool, total: int, initial: int):
     from tqdm import tqdm
 
     return tqdm(total=total, initial=initial, unit="step", desc="sampling", smoothing=0.05, dynamic_ncols=True)
+
+
+def _ensemble_moves(moves) -> bool:
+    """True if any move (default: stretch) is a red-blue ensemble move needing 2 x parameters walkers."""
+    if moves is None:
+        return True
+    items = moves if isinstance(moves, (list, tuple)) else [moves]
+    for item in items:
+        move = item[0] if isinstance(item, tuple) else item
+        if isinstance(move, RedBlueMove) and not move.live_dangerously:
+            return True
+    return False
 
 
 def _positive_int(name: str, value) -> int:

@@ -160,10 +160,19 @@ class Reference:
             total += val
         return total
 
-    def integral(self, what: str, p: float, za: float, zb: float, turning: bool = False) -> float:
-        """One-way integral over [za, zb]; with ``turning`` the ray turns at zb."""
+    def integral(self, what: str, p: float, za: float, zb: float, turning: bool | int = False) -> float:
+        """One-way integral over [za, zb]; with ``turning`` the ray turns at zb.
+
+        ``turning`` may be the index of the layer the ray turns in: then only a last piece
+        inside that layer is treated as ending at the turning point.
+        """
         pcs = self.pieces(za, zb)
-        return sum(self._segment(p, j, a, b, turning and i == len(pcs) - 1, what) for i, (j, a, b) in enumerate(pcs))
+        out = 0.0
+        for i, (j, a, b) in enumerate(pcs):
+            turn = (turning is not False and i == len(pcs) - 1
+                    and (turning is True or j == turning))
+            out += self._segment(p, j, a, b, turn, what)
+        return out
 
     # ---------------------------------------------------------- sub-branches
     def _subbranches(self, zs: float, zr: float, k: int | None):
@@ -201,8 +210,9 @@ class Reference:
                 continue
 
             def legs(p, j=j, s=s, v_start=v_start):
-                zt = s + (1.0 / p - v_start) / self.g[j]
-                return [(zu, zd, False, 1.0), (zd, zt, True, 2.0)]
+                # turning depth, kept inside layer j against rounding at the ends of the range
+                zt = min(max(s + (1.0 / p - v_start) / self.g[j], s), self.bottoms[j])
+                return [(zu, zd, False, 1.0), (zd, zt, j, 2.0)]
 
             out.append((1.0 / v_end, 1.0 / v_hi, False, legs, "diving"))
         return out
@@ -237,6 +247,8 @@ class Reference:
             f = xs - x
             found = []
             for i in range(len(ps) - 1):
+                if not (np.isfinite(f[i]) and np.isfinite(f[i + 1])):
+                    raise FloatingPointError(f"reference X(p) not finite near p = {ps[i]!r}")
                 if f[i] == 0.0:
                     found.append(ps[i])
                 elif f[i] * f[i + 1] < 0:

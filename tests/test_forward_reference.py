@@ -232,7 +232,7 @@ def test_first_arrival_is_least_fermat_time(run, forward, name):
             arrivals = _fermat_arrivals(th, v, zs, zr, x)
             t, kind, k = arrivals[0]
             assert a.time[0, i] == pytest.approx(t, rel=FERMAT_RTOL), (name, zs, zr, x, arrivals[:2])
-            if arrivals[1][0] > t * (1 + 1e-9):  # not a tie
+            if len(arrivals) == 1 or arrivals[1][0] > t * (1 + 1e-9):  # not a tie
                 assert a.branch[0, i] == codes[kind] and a.interface[0, i] == k, (name, zs, zr, x, arrivals[:2])
 
 

@@ -66,6 +66,15 @@ def test_velocity_depth_figure(batch, tmp_path):
     assert "true model" in legend_texts
 
 
+def test_velocity_depth_thins_large_batches(batch):
+    z = np.linspace(0.0, 25.0, 51)
+    fig = plots.plot_velocity_depth(batch, z, waves=["S"], max_models=50, doi=np.full(batch.n_models, 30.0))
+    keep = np.linspace(0, batch.n_models - 1, 50).round().astype(int)
+    median = fig.axes[0].get_lines()[0].get_xdata()
+    np.testing.assert_allclose(median, np.median(batch.profile(z, "S")[keep], axis=0))
+    assert fig.get_suptitle() == "Velocity–depth posterior (50 of 200 models)"
+
+
 def test_velocity_depth_p_only_in_km():
     model = LayerModel.build([[0.5, 20.0], [0.7, 25.0]], [[1.8, 6.0, 8.0], [2.0, 6.2, 8.1]], vpvs=1.75)
     fig = plots.plot_velocity_depth(model, np.linspace(0.0, 40.0, 41), waves=["P"], length_unit="km")
