@@ -46,6 +46,7 @@ class Problem:
             raise ConfigError("run description", "model",
                               f"vpvs_mode = 'none' but {picks.path}, line {line} is an S pick; "
                               "choose 'per_layer', 'shared' or 'vs'")
+        self._check_fluid_crossings()
         # ---------------------------------------------------------- event depths and epicentres
         self._depth_col = np.full(picks.n_sources, -1)
         self._x_col = np.full(picks.n_sources, -1)
@@ -106,6 +107,46 @@ class Problem:
         self._sigma = np.asarray(picks.sigma, dtype=float)
 
     # ------------------------------------------------------------------ helpers
+    def _fixed_interface_depths(self) -> list:
+        """Depth of each interface (1..N) where the prior fixes it, else None."""
+        fixed = self.prior.fixed
+        out, total = [], 0.0
+        for k in range(1, self.layers.n_layers + 1):
+            if self.layers.depth_parameter:
+                out.append(fixed.get(f"depth_{k}"))
+            else:
+                t = fixed.get(f"thickness_{k}")
+                total = None if (t is None or total is None) else total + t
+                out.append(total)
+        return out
+
+    def _check_fluid_crossings(self) -> None:
+        """S picks that must enter a fluid layer whose depth range is fixed are errors (file and line named)."""
+        if not self.layers.fluid_layers:
+            return
+        picks = self.picks
+        depths = [0.0] + self._fixed_interface_depths()
+        s_idx = np.flatnonzero(picks.wave == "S")
+        for k in sorted(self.layers.fluid_layers):
+            top = -np.inf if k == 1 else depths[k - 1]
+            bottom = np.inf if k == self.layers.total_layers else depths[k]
+            if top is None or bottom is None:
+                continue
+            for j in s_idx:
+                zs, zr = picks.source_depth[j], picks.receiver_depth[j]
+                if not (np.isfinite(zs) and np.isfinite(zr)):
+                    continue
+                lo, hi = min(zs, zr), max(zs, zr)
+                inside = (top <= zs < bottom) or (top <= zr < bottom)
+                across = lo < top and hi >= bottom
+                if inside or across:
+                    where = "lies inside" if inside else "would have to cross"
+                    raise ConfigError(picks.path, "data",
+                                      f"line {int(picks.line_numbers[j])}, column 'wave': S pick ({picks.source_id[j]} -> "
+                                      f"{picks.receiver_id[j]}) {where} fluid layer {k} "
+                                      f"(Vs = 0 from {top:g} to {bottom:g} {self.units}); S cannot travel there. "
+                                      "Remove the pick or correct its wave")
+
     def _add(self, name: str, spec, where: str) -> int:
         dist = distribution_from_spec(spec, where)
         if not isinstance(dist, Distribution):
