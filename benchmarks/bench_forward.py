@@ -17,7 +17,8 @@ baselines measured in the same run:
   the intercept-time formulas of the head waves (Telford, Geldart & Sheriff,
   *Applied Geophysics*, 2nd ed., 1990, ch. 4), for (b) a Python loop over
   models and picks calling the compiled scalar routine ``invert.forward._pick``
-  once per pick (timed on a subset of the models, rate scaled per pick);
+  once per pick (timed on a few evenly spread models, rate per pick, against
+  the engine timed on the same models);
 * a plain numpy broadcast -- for (a) the line values t_k + x / V_k on a
   (models, interfaces, picks) array masked before the critical distance, for
   (b) a simplified vectorised solver of the direct and diving rays only
@@ -26,9 +27,10 @@ baselines measured in the same run:
 
 Every baseline is checked against the engine before it is timed. Timings are
 the best of several repeats (each at least ``--min-time`` seconds, garbage
-collector off); the machine is shared, so single figures are noisy and only
-the ratios measured in one run are meant to be compared. Everything runs on
-one thread (NUMBA_NUM_THREADS=1, set before numba is imported).
+collector off, the methods of a case interleaved round by round); the machine
+is shared, so single figures are noisy and only the ratios measured in one
+run are meant to be compared. Everything runs on one thread
+(NUMBA_NUM_THREADS=1, set before numba is imported).
 
 This is a program that prints figures; it exits non-zero only when a
 correctness check fails, never because of a timing.
@@ -402,36 +404,42 @@ def numpy_direct_diving(ztop, vtop, grad, offsets, source_depth, receiver_depth)
 # ----------------------------------------------------------------------------
 # Measuring
 # ----------------------------------------------------------------------------
-def best_time(fn, repeats: int, min_time: float) -> tuple[float, int]:
-    """Best seconds per call over ``repeats`` repeats of at least ``min_time`` s each.
+def best_times(methods: dict, repeats: int, min_time: float) -> dict:
+    """Best seconds per call of every callable in ``methods``.
 
-    Returns (seconds per call, calls per repeat). The garbage collector is off
-    while timing.
+    Each method is first calibrated so that one repeat (a run of back-to-back
+    calls) lasts at least ``min_time`` seconds; then ``repeats`` rounds run
+    one repeat of every method in turn, so that all methods see the same
+    background load, and the best repeat of each is kept. The garbage
+    collector is off while timing. Returns {name: (seconds per call, calls per repeat)}.
     """
-    # calibrate: calls needed for one repeat to last min_time
-    n = 1
-    while True:
-        t0 = time.perf_counter()
-        for _ in range(n):
-            fn()
-        dt = time.perf_counter() - t0
-        if dt >= 0.05 * min_time or n >= 1 << 20:
-            break
-        n *= 4
-    per_repeat = max(1, math.ceil(1.1 * min_time * n / dt))
-    best = math.inf
+    calls = {}
+    for name, fn in methods.items():
+        n = 1
+        while True:
+            t0 = time.perf_counter()
+            for _ in range(n):
+                fn()
+            dt = time.perf_counter() - t0
+            if dt >= 0.05 * min_time or n >= 1 << 20:
+                break
+            n *= 4
+        calls[name] = max(1, math.ceil(1.1 * min_time * n / dt))
+    best = dict.fromkeys(methods, math.inf)
     gc_was_on = gc.isenabled()
     gc.disable()
     try:
         for _ in range(repeats):
-            t0 = time.perf_counter()
-            for _ in range(per_repeat):
-                fn()
-            best = min(best, (time.perf_counter() - t0) / per_repeat)
+            for name, fn in methods.items():
+                n = calls[name]
+                t0 = time.perf_counter()
+                for _ in range(n):
+                    fn()
+                best[name] = min(best[name], (time.perf_counter() - t0) / n)
     finally:
         if gc_was_on:
             gc.enable()
-    return best, per_repeat
+    return {name: (best[name], calls[name]) for name in methods}
 
 
 def compare(a: np.ndarray, b: np.ndarray) -> tuple[float, int]:
@@ -519,20 +527,23 @@ def case_surface(forward, LayerModel, report: Report, args) -> None:
     t_np = numpy_surface_constant(thickness, vp, offsets)
     report.check("(a) numpy broadcast vs engine", *compare(t_np, t_engine), TOL_EXACT)
 
-    sec, calls = best_time(engine, args.repeats, args.min_time)
+    thick_c, vp_c = np.ascontiguousarray(model.thickness), np.ascontiguousarray(model.vp)
+    timed = best_times({
+        "engine": engine,
+        # where the engine's time goes: the compiled kernel alone, without input checks
+        "kernel": lambda: forward._kernel_surface_constant(thick_c, vp_c, offsets),
+        "loop": lambda: loop_surface_constant(thickness, vp, offsets),
+        "numpy": lambda: numpy_surface_constant(thickness, vp, offsets),
+    }, args.repeats, args.min_time)
+    sec, calls = timed["engine"]
     rate_engine = n / sec
     print(f"  engine: {sec * 1e3:.3f} ms per batch ({calls} calls per repeat); "
           f"compile time ~ {first_call - sec:.2f} s")
     report.row("(a) surface", "engine travel_times", rate_engine, rate_engine, TARGET_SURFACE)
-    # where the time goes: the compiled kernel alone, without input checks
-    thick_c, vp_c = np.ascontiguousarray(model.thickness), np.ascontiguousarray(model.vp)
-    sec, _ = best_time(lambda: forward._kernel_surface_constant(thick_c, vp_c, offsets), args.repeats, args.min_time)
-    report.row("(a) surface", "engine kernel alone", n / sec, rate_engine, TARGET_SURFACE,
+    report.row("(a) surface", "engine kernel alone", n / timed["kernel"][0], rate_engine, TARGET_SURFACE,
                note="_kernel_surface_constant, no input checks")
-    sec, calls = best_time(lambda: loop_surface_constant(thickness, vp, offsets), args.repeats, args.min_time)
-    report.row("(a) surface", "Python loop per pick", n / sec, rate_engine)
-    sec, calls = best_time(lambda: numpy_surface_constant(thickness, vp, offsets), args.repeats, args.min_time)
-    report.row("(a) surface", "numpy broadcast", n / sec, rate_engine)
+    report.row("(a) surface", "Python loop per pick", n / timed["loop"][0], rate_engine)
+    report.row("(a) surface", "numpy broadcast", n / timed["numpy"][0], rate_engine)
 
 
 def case_buried(forward, LayerModel, report: Report, args) -> None:
@@ -573,31 +584,33 @@ def case_buried(forward, LayerModel, report: Report, args) -> None:
                   f"median {np.median(err[sel]):.3g} s, > 1e-6 s at {np.count_nonzero(err[sel] > 1e-6)} "
                   f"of {np.count_nonzero(sel)} picks")
 
-    sec, calls = best_time(engine, args.repeats, args.min_time)
-    rate_engine = n / sec
-    print(f"  engine: {sec * 1e3:.2f} ms per batch ({calls} calls per repeat); "
-          f"compile time ~ {first_call - sec:.2f} s")
-    sec_d, _ = best_time(engine_direct, args.repeats, args.min_time)
-    rate_direct = n / sec_d
-    report.row("(b) buried", "engine travel_times, first arrival", rate_engine, rate_engine, TARGET_BURIED)
-    report.row("(b) buried", "engine travel_times, branch='direct'", rate_direct, rate_direct,
-               note="reference for the numpy row")
-    # the per-pick loop is slow: time it on evenly spread models, and the engine on the same ones
+    # the per-pick loop is slow: it is timed on evenly spread models, and the engine on the same ones
     n_loop = min(args.loop_models, model.n_models)
     sub = np.linspace(0, model.n_models - 1, n_loop).round().astype(int)
     sub_model = model.take(sub)
-    sec, _ = best_time(lambda: forward.travel_times(sub_model, "P", offsets, zs, zr), args.repeats, args.min_time)
-    rate_sub = n_loop * offsets.size / sec
+    sub_arrays = (ztop[sub], vtop[sub], grad[sub])
+    timed = best_times({
+        "engine": engine,
+        "direct": engine_direct,
+        "engine_sub": lambda: forward.travel_times(sub_model, "P", offsets, zs, zr),
+        "loop_sub": lambda: loop_pick_scalar(forward._pick, *sub_arrays, offsets, zs, zr, forward.N_SCAN),
+        "numpy": lambda: numpy_direct_diving(ztop, vtop, grad, offsets, zs, zr),
+    }, args.repeats, args.min_time)
+    sec, calls = timed["engine"]
+    rate_engine = n / sec
+    print(f"  engine: {sec * 1e3:.2f} ms per batch ({calls} calls per repeat); "
+          f"compile time ~ {first_call - sec:.2f} s")
+    rate_direct = n / timed["direct"][0]
+    n_sub = n_loop * offsets.size
+    rate_sub = n_sub / timed["engine_sub"][0]
     label = f"{n_loop} of {model.n_models} models"
+    report.row("(b) buried", "engine travel_times, first arrival", rate_engine, rate_engine, TARGET_BURIED)
+    report.row("(b) buried", "engine travel_times, branch='direct'", rate_direct, rate_direct,
+               note="reference for the numpy row")
     report.row("(b) buried", "engine travel_times, first arrival", rate_sub, rate_sub,
                note=f"{label}, reference for the loop row")
-    sub_arrays = (ztop[sub], vtop[sub], grad[sub])
-    sec, _ = best_time(lambda: loop_pick_scalar(forward._pick, *sub_arrays, offsets, zs, zr, forward.N_SCAN),
-                       args.repeats, args.min_time)
-    report.row("(b) buried", "Python loop calling _pick", n_loop * offsets.size / sec, rate_sub, note=label)
-    sec, calls = best_time(lambda: numpy_direct_diving(ztop, vtop, grad, offsets, zs, zr),
-                           args.repeats, args.min_time)
-    report.row("(b) buried", "numpy simplified direct+diving", n / sec, rate_direct,
+    report.row("(b) buried", "Python loop calling _pick", n_sub / timed["loop_sub"][0], rate_sub, note=label)
+    report.row("(b) buried", "numpy simplified direct+diving", n / timed["numpy"][0], rate_direct,
                note=f"lower accuracy, max diff {diff:.1e} s")
 
 
@@ -639,8 +652,8 @@ def main(argv=None) -> int:
               f"{_cpu_name()}, {os.cpu_count()} logical CPUs, load average {load[0]:.2f}")
         print(f"numba threads: {numba.get_num_threads()} (NUMBA_NUM_THREADS={os.environ['NUMBA_NUM_THREADS']}); "
               f"the engine kernels are serial, so every figure is single-thread")
-        print(f"timing: best of {args.repeats} repeats, each >= {args.min_time:g} s; "
-              f"the machine may be shared, so absolute figures are noisy")
+        print(f"timing: best of {args.repeats} repeats, each >= {args.min_time:g} s, methods of a case "
+              f"interleaved round by round; the machine may be shared, so absolute figures are noisy")
         report = Report()
         case_surface(forward, LayerModel, report, args)
         case_buried(forward, LayerModel, report, args)

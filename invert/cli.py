@@ -44,11 +44,12 @@ def _cmd_check(args) -> int:
     for name, dist in zip(problem.nuisance_names, problem.nuisance_priors):
         print(f"{name}: {dist.describe(problem.parameter_units()[name])}")
     print(f"Pointwise log likelihood stored per {problem.pointwise_kind}.")
-    try:
-        from .classic import starting_point
+    from .run import classic_start
 
-        starting_point(problem, quiet=False)
-    except (ImportError, ValueError, RuntimeError) as exc:
+    try:
+        if classic_start(problem, quiet=False) is None:
+            print("(no intercept-time estimate: it needs P first arrivals with surface source and receivers)")
+    except (ValueError, RuntimeError) as exc:
         print(f"(no intercept-time estimate: {exc})")
     print("Everything reads and checks out; start the inversion with: invert run", args.config)
     return 0

@@ -412,7 +412,9 @@ class _TotalDepth:
         return np.asarray((total >= self.low) & (total <= self.high))
 
     def text(self) -> str:
-        return f"{_number(self.low)} <= depth of interface {self.n} <= {_number(self.high)}"
+        low = f"{_number(self.low)} <= " if math.isfinite(self.low) else ""
+        high = f" <= {_number(self.high)}" if math.isfinite(self.high) else ""
+        return f"{low}depth of interface {self.n}{high}"
 
 
 # ===================================================================== blocks

@@ -134,7 +134,7 @@ def starting_points(problem: Problem, config: RunConfig, rng: np.random.Generato
     """Initial walker positions (ensembles, walkers, D) as chosen by ``[sampler] start``."""
     s = config.sampler
     if s.start == "classic":
-        point = classic_start(problem, quiet=quiet)
+        point = classic_start(problem, quiet=False if not quiet else True)
         if point is not None:
             scale = np.maximum(np.abs(point) * 0.02, 1e-6)
             return initial_around(point, scale, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
@@ -146,16 +146,58 @@ def starting_points(problem: Problem, config: RunConfig, rng: np.random.Generato
 
 
 def classic_start(problem: Problem, quiet: bool = True):
-    """A starting point from the intercept-time method, or None where it does not apply."""
-    try:
-        from .classic import starting_point
-    except ImportError:
+    """A starting point from the intercept-time method, or None where it does not apply.
+
+    Uses the P first arrivals of the source with the most surface-to-surface
+    picks (the method assumes both ends at the surface), fits N + 1
+    straight-line segments and maps slopes and intercepts to ``vp_k`` and
+    ``thickness_k`` (Telford, Geldart & Sheriff 1990, ch. 4). Every other
+    parameter starts at its prior median; values outside the prior's support
+    are replaced by the prior median. The estimate is printed as a sanity check.
+    """
+    import warnings
+
+    from .classic import intercept_time_estimate
+
+    picks = problem.picks
+    surface = (picks.wave == "P") & (picks.branch == "first") & (picks.source_depth == 0) \
+        & (picks.receiver_depth == 0) & np.isfinite(picks.distance) & np.isfinite(picks.travel_time)
+    if not surface.any():
         return None
-    try:
-        return starting_point(problem, quiet=quiet)
-    except (ValueError, RuntimeError) as exc:
-        _say(f"classic estimate failed: {exc}", quiet)
+    counts = np.bincount(picks.source_index[surface], minlength=picks.n_sources)
+    src = int(np.argmax(counts))
+    sel = surface & (picks.source_index == src)
+    n_seg = problem.layers.n_layers + 1
+    if sel.sum() < 3 * n_seg:
         return None
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        est = intercept_time_estimate(picks.distance[sel], picks.travel_time[sel], n_segments=n_seg)
+    _say(f"Intercept-time estimate from source {picks.source_names[src]} (sanity check):\n"
+         f"{est.summary(problem.units)}", quiet)
+    for w in caught:
+        _say(f"note: {w.message}", quiet)
+    low, high = problem.bounds(tail=0.0 + 1e-9)
+    point = np.array([float(d.ppf(0.5)) for d in
+                      [problem.prior.priors[n] for n in problem.prior.names] + list(problem.nuisance_priors)])
+    depth = np.cumsum(est.thicknesses)
+    for i, name in enumerate(problem.names):
+        family, _, k = name.rpartition("_")
+        if not k.isdigit():
+            continue
+        k = int(k)
+        value = None
+        if family == "vp" and k <= est.velocities.size:
+            value = est.velocities[k - 1]
+        elif family == "thickness" and k <= est.thicknesses.size:
+            value = est.thicknesses[k - 1]
+        elif family == "depth" and k <= depth.size:
+            value = depth[k - 1]
+        if value is not None and np.isfinite(value) and low[i] < value < high[i]:
+            point[i] = value
+    if not np.isfinite(problem.log_prob(point[None, :])[0]):
+        return None
+    return point
 
 
 def data_checks(picks: PickSet) -> list[str]:

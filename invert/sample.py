@@ -683,6 +683,15 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
     if saved is not None:
         width = saved["settings"]["blob_width"]
         wrapped.blob_width = None if width < 0 else width
+        for e, rec in enumerate(records):  # the same problem? (no random numbers are drawn here)
+            if rec.iteration:
+                last = rec.get_last_sample()
+                lp_now, _ = wrapped.evaluate(last.coords.copy())
+                if not np.allclose(lp_now, last.log_prob, rtol=1e-9, atol=1e-9):
+                    worst = float(np.max(np.abs(lp_now - last.log_prob)))
+                    raise ValueError(f"refusing to resume {path}: log_prob at the saved positions of ensemble "
+                                     f"{e + 1} differs from the saved values (by up to {worst:.3g}); the data or "
+                                     "the model have changed")
 
     def save(target_now):
         if path is None:

@@ -1,0 +1,173 @@
+"""Properties of the travel-time engine that hold for every layered model (hypothesis).
+
+* First-arrival time is non-decreasing in offset for a surface source: every branch has
+  dT/dx = p >= 0 and the first arrival is their minimum (common practice).
+* Source-receiver reciprocity: swapping the two depths leaves every branch unchanged
+  (reciprocity of the travel time; Aki & Richards, Quantitative Seismology, 2nd ed., 2002,
+  ch. 2; from memory).
+* Scaling: lengths x a and gradients x 1/a (velocities unchanged) scale times by a and leave
+  ray parameters unchanged (dimensional analysis).
+* A batch gives the same result as each model alone, with shared or per-model geometry.
+* The first arrival is continuous in source depth across an interface (Fermat: the least
+  time is a continuous function of the end points).
+
+Models: 0-3 layers over a half-space, km and km/s; the top layer never has a velocity that
+falls with depth where the property would rely on rays turning above both ends (a known,
+documented engine limitation).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from invert.model import LayerModel
+
+SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+
+
+def _finite_floats(lo, hi):
+    return st.floats(lo, hi, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def layer_arrays(draw, n_layers, falling_top=True):
+    """thickness (N,), vp (N+1,), gradient (N+1,) of one model with N = n_layers."""
+    th = [draw(_finite_floats(0.2, 3.0)) for _ in range(n_layers)]
+    vp = [draw(_finite_floats(1.5, 8.0)) for _ in range(n_layers + 1)]
+    grad = []
+    for j in range(n_layers + 1):
+        kind = draw(st.sampled_from(["zero", "up", "down"]))
+        if j == n_layers:  # half-space: constant or gently rising
+            g = 0.0 if kind == "zero" else draw(_finite_floats(0.0, 0.05))
+        elif kind == "zero" or (j == 0 and not falling_top and kind == "down"):
+            g = 0.0
+        elif kind == "up":
+            g = draw(_finite_floats(0.0, 1.0))
+        else:  # falling, keeping at least 1 km/s at the base
+            g = -draw(_finite_floats(0.0, min(0.3, (vp[j] - 1.0) / th[j])))
+        grad.append(g)
+    return np.array(th), np.array(vp), np.array(grad)
+
+
+@st.composite
+def models(draw, falling_top=True, max_layers=3):
+    n = draw(st.integers(0, max_layers))
+    th, vp, grad = draw(layer_arrays(n, falling_top))
+    vpvs = draw(_finite_floats(1.6, 2.5))
+    return LayerModel.build(th, vp, vpvs=vpvs, gradient=grad)
+
+
+def _branches(model):
+    out = [("first", None), ("direct", None)]
+    for k in range(1, model.n_layers):
+        out += [("reflection", k), ("head", k)]
+    return out
+
+
+def _same(a, b, rtol=1e-9):
+    a, b = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
+    both_inf = np.isinf(a) & np.isinf(b)
+    both_nan = np.isnan(a) & np.isnan(b)
+    close = np.isclose(a, b, rtol=rtol, atol=0.0)
+    return np.all(both_inf | both_nan | close)
+
+
+# ------------------------------------------------------------------ monotonic
+@SETTINGS
+@given(model=models(falling_top=False), wave=st.sampled_from(["P", "S"]),
+       zr=st.one_of(st.just(0.0), _finite_floats(0.0, 4.0)), xmax=_finite_floats(1.0, 80.0))
+def test_first_arrival_non_decreasing_in_offset(run, model, wave, zr, xmax):
+    x = np.linspace(0.0, xmax, 400)
+    t = run(model, wave, x, 0.0, zr).time[0]
+    assert np.all(np.isfinite(t[: 1])), t[:3]  # a rising/constant top layer always has a direct ray at x = 0
+    ok = t[1:] >= t[:-1] * (1 - 1e-12)
+    assert np.all(ok), (x[1:][~ok][:5], t[:-1][~ok][:5], t[1:][~ok][:5])
+
+
+# --------------------------------------------------------------- reciprocity
+@SETTINGS
+@given(model=models(), wave=st.sampled_from(["P", "S"]),
+       zs=st.lists(_finite_floats(-0.2, 6.0), min_size=4, max_size=4),
+       zr=st.lists(_finite_floats(-0.2, 6.0), min_size=4, max_size=4),
+       x=st.lists(_finite_floats(0.0, 50.0), min_size=4, max_size=4))
+def test_reciprocity(run, model, wave, zs, zr, x):
+    for branch, k in _branches(model):
+        a = run(model, wave, x, zs, zr, branch=branch, interface=k)
+        b = run(model, wave, x, zr, zs, branch=branch, interface=k)
+        assert _same(a.time, b.time), (branch, k, a.time, b.time)
+        assert _same(a.ray_parameter, b.ray_parameter, rtol=1e-7), (branch, k, a.ray_parameter, b.ray_parameter)
+        assert np.array_equal(a.branch, b.branch), (branch, k, a.branch, b.branch)
+
+
+# ------------------------------------------------------------------- scaling
+@SETTINGS
+@given(model=models(), scale=st.floats(-2.0, 2.0).map(lambda e: 10.0**e),
+       zs=st.lists(_finite_floats(-0.2, 6.0), min_size=3, max_size=3),
+       zr=st.lists(_finite_floats(-0.2, 6.0), min_size=3, max_size=3),
+       x=st.lists(_finite_floats(0.0, 50.0), min_size=3, max_size=3))
+def test_scaling_lengths_scales_times(run, model, scale, zs, zr, x):
+    scaled = LayerModel.build(model.thickness * scale, model.vp, vs=model.vs, gradient=model.vp_gradient / scale,
+                              vs_gradient=model.vs_gradient / scale)
+    for branch, k in _branches(model):
+        a = run(model, "P", x, zs, zr, branch=branch, interface=k)
+        b = run(scaled, "P", np.array(x) * scale, np.array(zs) * scale, np.array(zr) * scale,
+                branch=branch, interface=k)
+        assert _same(b.time, a.time * scale), (branch, k, scale, a.time, b.time)
+        assert _same(b.ray_parameter, a.ray_parameter, rtol=1e-7), (branch, k, a.ray_parameter, b.ray_parameter)
+
+
+# --------------------------------------------------------------------- batch
+@st.composite
+def batches(draw):
+    n = draw(st.integers(0, 3))
+    n_models = draw(st.integers(2, 4))
+    rows = [draw(layer_arrays(n)) for _ in range(n_models)]
+    th = np.array([r[0] for r in rows]).reshape(n_models, n)
+    vp = np.array([r[1] for r in rows])
+    grad = np.array([r[2] for r in rows])
+    vpvs = np.array([[draw(_finite_floats(1.6, 2.5))] * (n + 1) for _ in range(n_models)])
+    return th, vp, grad, vpvs
+
+
+@SETTINGS
+@given(arrays=batches(), wave=st.sampled_from(["P", "S"]),
+       zs=st.lists(_finite_floats(-0.2, 6.0), min_size=5, max_size=5),
+       zr=st.lists(_finite_floats(-0.2, 6.0), min_size=5, max_size=5),
+       x=st.lists(_finite_floats(0.0, 50.0), min_size=5, max_size=5))
+def test_batch_equals_single_models(run, forward, arrays, wave, zs, zr, x):
+    th, vp, grad, vpvs = arrays
+    batch = LayerModel.build(th, vp, vpvs=vpvs, gradient=grad)
+    for branch, k in _branches(batch):
+        a = run(batch, wave, x, zs, zr, branch=branch, interface=k)
+        assert a.time.shape == (batch.n_models, len(x))
+        for m in range(batch.n_models):
+            single = LayerModel.build(th[m], vp[m], vpvs=vpvs[m], gradient=grad[m])
+            s = run(single, wave, x, zs, zr, branch=branch, interface=k)
+            assert _same(a.time[m], s.time[0], rtol=1e-12), (branch, k, m)
+            assert _same(a.ray_parameter[m], s.ray_parameter[0], rtol=1e-12), (branch, k, m)
+            assert np.array_equal(a.branch[m], s.branch[0]) and np.array_equal(a.interface[m], s.interface[0])
+    # per-model geometry (models, picks): row m of the result is model m with geometry row m
+    rng = np.random.default_rng(0)
+    xs = rng.permuted(np.tile(np.array(x), (batch.n_models, 1)), axis=1)
+    a = forward.travel_times(batch, wave, xs, np.tile(zs, (batch.n_models, 1)), np.tile(zr, (batch.n_models, 1)))
+    for m in range(batch.n_models):
+        s = run(batch.take(m), wave, xs[m], zs, zr)
+        assert _same(a.time[m], s.time[0], rtol=1e-12), m
+
+
+# ------------------------------------------------- continuity across interfaces
+@SETTINGS
+@given(model=models(falling_top=False, max_layers=3).filter(lambda m: m.n_layers > 1),
+       k=st.integers(1, 3), zr=_finite_floats(-0.2, 6.0), x=_finite_floats(0.0, 50.0))
+def test_first_arrival_continuous_across_interface_depth(run, model, k, zr, x):
+    k = min(k, model.n_layers - 1)
+    d = float(model.interface_depths[0, k - 1])
+    eps = 1e-9 * max(d, 1.0)
+    t = run(model, "P", [x, x, x], [d - eps, d, d + eps], zr).time[0]
+    assert np.all(np.isfinite(t)) or np.all(np.isinf(t)), t
+    if np.all(np.isfinite(t)):
+        assert t[0] == pytest.approx(t[1], rel=1e-6, abs=1e-9), (d, t)
+        assert t[2] == pytest.approx(t[1], rel=1e-6, abs=1e-9), (d, t)
