@@ -412,6 +412,41 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
                     best_code = 3
                     best_k = k + 1
                     best_deep = ztop[l + 1]
+    # ---- deeper end exactly on an interface over a faster constant layer: the ray leaves along
+    # the interface in the layer below (the limit of an end just below it; Fermat)
+    if (mode == 0 or (mode == 2 and kwant == lb - 1)) and n_u > 0 and lb > 0 and zmax == ztop[lb] \
+            and grad[lb] <= 0.0 and vtop[lb] > vmax_u:
+        vref = vtop[lb]
+        qref2 = (1.0 - vmax_u / vref) * (1.0 + vmax_u / vref)
+        p = 1.0 / vref
+        xc, tc, dc = _sum_pieces(p, vmax_u, qref2, va, vb, h, w, n_u)
+        if x >= xc:
+            t = tc + p * (x - xc)
+            if t < best_t:
+                best_t = t
+                best_p = p
+                best_code = 3
+                best_k = lb
+                best_deep = zmax
+    # ---- shallower end exactly on an interface under a faster constant layer: the ray leaves
+    # along the interface in the layer above (the limit of an end just above it)
+    if (mode == 0 or (mode == 2 and kwant == lmin - 1)) and lmin > 0 and zmin == ztop[lmin] \
+            and grad[lmin - 1] == 0.0 and vtop[lmin - 1] > max(vmax_u, v_at_zmin):
+        vref = vtop[lmin - 1]
+        if n_u > 0:
+            qref2 = (1.0 - vmax_u / vref) * (1.0 + vmax_u / vref)
+            xc, tc, dc = _sum_pieces(1.0 / vref, vmax_u, qref2, va, vb, h, w, n_u)
+        else:
+            xc = 0.0
+            tc = 0.0
+        if x >= xc:
+            t = tc + (x - xc) / vref
+            if t < best_t:
+                best_t = t
+                best_p = 1.0 / vref
+                best_code = 3
+                best_k = lmin
+                best_deep = zmax
     # ---- direct ray (no turning point)
     if mode == 0 or mode == 1:
         if n_u == 0:
