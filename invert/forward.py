@@ -675,6 +675,13 @@ def _geometry(distance, source_depth, receiver_depth, n_models=None):
     for name, val in (("distance", distance), ("source_depth", source_depth), ("receiver_depth", receiver_depth)):
         arrays[name] = np.asarray(val, dtype=float)
     x = arrays["distance"]
+    if x.ndim == 1 and all(a.ndim == 0 or a.shape == x.shape for a in arrays.values()):
+        # common case, checked cheaply: one geometry shared by every model
+        out = [np.ascontiguousarray(a if a.ndim else np.full(x.shape, float(a)))[None, :] for a in arrays.values()]
+        total = out[0].sum() + out[1].sum() + out[2].sum()
+        if np.isfinite(total) and (x.size == 0 or out[0].min() >= 0):
+            return out
+    x = arrays["distance"]
     if x.ndim == 0:
         x = x[None]
     if x.ndim not in (1, 2):

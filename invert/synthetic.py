@@ -168,14 +168,15 @@ def network(model: LayerModel, survey: dict, rng: np.random.Generator, folder: P
     hide_origin = survey.get("hide_origin_time", True)
     src_lines = ["source,x,y,depth,origin_time"]
     for e in ev:
-        src_lines.append(f"{e['name']},{e['x']!r},{e['y']!r},{'' if hide_depth else repr(float(e['depth']))},"
+        src_lines.append(f"{e['name']},{float(e['x'])!r},{float(e['y'])!r},"
+                         f"{'' if hide_depth else repr(float(e['depth']))},"
                          f"{'' if hide_origin else repr(origin[e['name']])}")
-    rec_lines = ["receiver,x,y,depth"] + [f"{s['name']},{s['x']!r},{s['y']!r},{float(s.get('depth', 0.0))!r}"
+    rec_lines = ["receiver,x,y,depth"] + [f"{s['name']},{float(s['x'])!r},{float(s['y'])!r},{float(s.get('depth', 0.0))!r}"
                                           for s in st]
     pick_lines = [f"# {comment}", "source,receiver,wave,time,sigma"]
     for j in range(synth["time"].size):
         pick_lines.append(f"{synth['source'][j]},{synth['receiver'][j]},{synth['wave'][j]},"
-                          f"{synth['time'][j]!r},{synth['sigma'][j]!r}")
+                          f"{float(synth['time'][j])!r},{float(synth['sigma'][j])!r}")
     from .run import write_atomic
 
     write_atomic(folder / "sources.csv", "\n".join(src_lines) + "\n")
