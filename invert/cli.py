@@ -66,7 +66,8 @@ def _cmd_synth(args) -> int:
 def _cmd_report(args) -> int:
     from .report import write_report
 
-    html = write_report(Path(args.run_dir), png=args.png)
+    html = write_report(Path(args.run_dir), png=args.png, bedrock_velocity=args.bedrock_vs,
+                        site_classes=args.site_classes)
     print(f"Report written to {html} (open it in a browser; it works offline)")
     print(CAUTION)
     return 0
@@ -111,6 +112,11 @@ def build_parser() -> argparse.ArgumentParser:
                                     "one self-contained HTML file (report.html) and a Markdown summary.")
     rp.add_argument("run_dir", help="output folder of 'invert run'")
     rp.add_argument("--png", action="store_true", help="also keep every figure as a PNG file in RUN_DIR/figures")
+    rp.add_argument("--bedrock-vs", type=float, default=760.0, metavar="VS",
+                    help="S velocity [m/s] whose depth is reported as depth to bedrock-like material (default 760)")
+    rp.add_argument("--site-classes", default="ASCE7-16", choices=["ASCE7-16", "EC8-2004"],
+                    help="site-class band edges for Vs30 (default ASCE7-16: 1500/760/360/180 m/s); "
+                         "always check the code that applies locally")
     rp.set_defaults(func=_cmd_report)
     return p
 
@@ -129,6 +135,11 @@ def main(argv=None) -> int:
     except FileNotFoundError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
+    except ValueError as exc:
+        if args.command == "report":
+            print(f"error: {exc}", file=sys.stderr)
+            return 2
+        raise
     except KeyboardInterrupt:
         print("\ninterrupted: every completed step is in the checkpoint; continue with --resume", file=sys.stderr)
         return 130

@@ -24,15 +24,17 @@ How the constraint probability and the unit-cube map are computed
 -------------------------------------------------------------------
 The free parameters split into independent blocks (connected by constraints):
 
-* a chain of independent variables that must be ordered (velocities where gradients do
-  not enter, interface depths, possibly bounded by fixed neighbours or by the total-depth
-  bounds): a recursive integral on a grid (forward pass) gives the probability of the
-  order, and sampling backward through the conditionals gives the ordered unit-cube map;
+* a chain of independent variables that must be ordered (velocities down the layers, also
+  across the random rise gradient_k * thickness_k of a gradient layer; interface depths;
+  possibly bounded by fixed neighbours or by the total-depth bounds): a recursive integral
+  on a grid (forward pass) gives the probability of the order, and sampling backward
+  through the conditionals gives the ordered unit-cube map;
 * independent thicknesses whose sum is bounded: a recursive integral over the partial
   depth on a uniform grid, then a forward conditional inverse-CDF map;
-* anything else (a free gradient coupling velocity and thickness at an interface whose
-  order is enforced): Monte Carlo estimate of the probability with its standard error,
-  rejection sampling, and no unit-cube map (:meth:`JointPrior.from_unit_cube` raises).
+* anything else (a random rise through a gradient layer with interface depths as
+  parameters, or whose thickness also enters the total-depth bounds): Monte Carlo estimate
+  of the probability with its standard error, rejection sampling, and no unit-cube map
+  (:meth:`JointPrior.from_unit_cube` raises).
 
 Grid results carry an error estimate: the change of the log-probability when the grid is
 halved (the error of the full grid is smaller than that).
@@ -435,23 +437,131 @@ class _Independent:
         return self.from_unit(rng.random((n, 1)))
 
 
-class _OrderedChain:
-    """Independent x_1..x_m with lo_j <= x_j <= hi_j and x_{j+1} >= x_j + shift_j.
+def _times(a: float, b: float) -> float:
+    """a * b with 0 * inf = 0 (a support corner of a product)."""
+    return 0.0 if a == 0.0 or b == 0.0 else a * b
 
-    With offsets o_1 = 0, o_{j+1} = o_j + shift_j and z_j = x_j - o_j the order is
-    z_1 <= ... <= z_m. Let F_j(z) = P(lo_j <= X_j <= min(hi_j, z + o_j)) (a sub-distribution
-    function) and G_0 = 1, G_j(z) = integral_{-inf}^{z} G_{j-1}(y) dF_j(y). Then
-    P(constraints) = G_m(+inf), and the constrained density of z_j given z_{j+1} has the
-    distribution function G_j(z) / G_j(z_{j+1}) on z <= z_{j+1}. On a grid holding every
-    support edge, G_{j-1} is averaged over each cell (trapezoid) while F_j is exact, so
-    jumps of uniform densities cost nothing; inside a cell the map inverts F_j exactly.
+
+class _ProductShift:
+    """The random rise of velocity through a gradient layer: S = g * h [velocity].
+
+    ``g`` (gradient, 1/s) and ``h`` (thickness >= 0) are independent; either may be fixed
+    (a float) but not both. ``cdf(s) = P(g h <= s)``; ``draw_given_room`` draws (g, h) from
+    their priors restricted to g h <= room, using u-coordinates ``u_g`` and ``u_h``.
+    """
+
+    _N_QUAD = 512
+
+    def __init__(self, g, h, g_name: str, h_name: str):
+        self.g, self.h, self.g_name, self.h_name = g, h, g_name, h_name
+        self.free = [n for n, v in ((g_name, g), (h_name, h)) if isinstance(v, Distribution)]
+        g_lo, g_hi = g.support if isinstance(g, Distribution) else (g, g)
+        h_lo, h_hi = h.support if isinstance(h, Distribution) else (h, h)
+        corners = [_times(a, b) for a in (g_lo, g_hi) for b in (h_lo, h_hi)]
+        self.s_min, self.s_max = min(corners), max(corners)
+        if isinstance(h, Distribution) and not h.support[0] >= 0:
+            raise ValueError(f"{h_name}: thickness prior must not allow negative values")
+        # Q(s) = P(g h <= s), tabulated on 4097 points between its 1e-10 quantiles (linear
+        # interpolation). It enters the normaliser and the cell weights of the map; the draws
+        # of g and h themselves invert their exact priors.
+        tail = np.array([1e-10, 1 - 1e-10])
+        gq = g.ppf(tail) if isinstance(g, Distribution) else (g, g)
+        hq = h.ppf(tail) if isinstance(h, Distribution) else (h, h)
+        ends = [_times(a, b) for a in gq for b in hq]
+        self._s_grid = np.linspace(max(min(ends), self.s_min), min(max(ends), self.s_max), 4097)
+        self._q_table = self._exact_cdf(self._s_grid)
+
+    def _exact_cdf(self, s):
+        g, h = self.g, self.h
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if not isinstance(h, Distribution):
+                return g.cdf(s / h) if h > 0 else (s >= 0).astype(float)
+            if not isinstance(g, Distribution):
+                return h.cdf(s / g) if g > 0 else h.sf(s / g)
+            # E_h[F_g(s / h)] by the midpoint rule in the probability of h
+            nodes = h.ppf((np.arange(self._N_QUAD) + 0.5) / self._N_QUAD)
+            return g.cdf(s[:, None] / nodes[None, :]).mean(axis=1)
+
+    def cdf(self, s):
+        """P(g h <= s) (tabulated)."""
+        return np.interp(np.asarray(s, dtype=float), self._s_grid, self._q_table, left=0.0, right=1.0)
+
+    def draw_given_room(self, room, u_g, u_h):
+        """(g, h) arrays from p_g p_h restricted to g h <= room (room >= s_min)."""
+        g, h = self.g, self.h
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if not isinstance(h, Distribution):
+                g_val = np.minimum(g.ppf(u_g * g.cdf(room / h)), room / h)  # guard against rounding
+                return g_val, np.full(room.shape, float(h))
+            if not isinstance(g, Distribution):
+                lim = room / g
+                if g > 0:
+                    return np.full(room.shape, float(g)), h.ppf(u_h * h.cdf(lim))
+                f = h.cdf(lim)
+                return np.full(room.shape, float(g)), h.ppf(f + u_h * (1.0 - f))
+            # h given room: density p_h(h) F_g(room / h) on the h for which F_g(room / h) > 0
+            g_lo = g.support[0]
+            h_lo, h_hi = (np.full(room.shape, v) for v in h.support)
+            if g_lo > 0:
+                h_hi = np.minimum(h_hi, room / g_lo)
+            elif g_lo < 0:
+                h_lo = np.where(room < 0, np.maximum(h_lo, room / g_lo), h_lo)
+            qL, qR = h.cdf(h_lo), h.cdf(h_hi)
+            lin = np.linspace(0.0, 1.0, 257)
+            q = qL[:, None] + (qR - qL)[:, None] * lin[None, :]
+            t = h.ppf(q)
+            fg = g.cdf(room[:, None] / t)
+            w = np.diff(q, axis=1) * 0.5 * (fg[:, :-1] + fg[:, 1:])
+            q_h = _pick_in_cells(q, w, u_h)
+            h_val = np.clip(h.ppf(q_h), h_lo, h_hi)
+            g_val = g.ppf(u_g * g.cdf(room / h_val))
+            return np.minimum(g_val, room / h_val), h_val   # guard against last-bit rounding
+
+
+def _pick_in_cells(edges, weights, u):
+    """Invert a piecewise-uniform distribution: cell i has mass weights[:, i] and spans
+    [edges[:, i], edges[:, i + 1]]; returns the point at cumulative fraction u (per row)."""
+    W = np.cumsum(weights, axis=1)
+    target = u * W[:, -1]
+    i = np.minimum((W < target[:, None]).sum(axis=1), weights.shape[1] - 1)
+    rows = np.arange(weights.shape[0])
+    w_i = weights[rows, i]
+    W_prev = np.where(i > 0, W[rows, np.maximum(i - 1, 0)], 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.clip(np.where(w_i > 0, (target - W_prev) / w_i, 0.0), 0.0, 1.0)
+    return edges[rows, i] + frac * (edges[rows, i + 1] - edges[rows, i])
+
+
+class _OrderedChain:
+    """Independent x_1..x_m with lo_j <= x_j <= hi_j and x_{j+1} >= x_j + S_j.
+
+    The shift S_j is a constant, or the random rise g h through a gradient layer
+    (:class:`_ProductShift`). With offsets o_1 = 0, o_{j+1} = o_j + S_j for constant shifts
+    (o_{j+1} = o_j for random ones) and z_j = x_j - o_j the order is z_1 <= ... <= z_m
+    (plus the random shifts). Let F_j(z) = P(lo_j <= X_j <= min(hi_j, z + o_j)) (a
+    sub-distribution function), G_0 = 1, and
+
+        G_j(z) = integral_{-inf}^{z} R_{j-1}(y) dF_j(y),
+
+    where R_{j-1} = G_{j-1} after a constant shift and R_{j-1}(y) = integral Q(y - x)
+    dG_{j-1}(x) after a random one (Q = CDF of S). Then P(constraints) = G_m(+inf), and
+    sampling runs backward: z_m from G_m / P, then z_j given z_{j+1} from G_j(z) / G_j(z_{j+1})
+    (constant shift) or from Q(z_{j+1} - z) dG_j(z) followed by (g, h) given the room left
+    (random shift). A fixed velocity above (``head``) or below (``tail``) reached through a
+    random shift enters the same way. On a grid holding every support edge, the weights are
+    averaged over each cell (trapezoid) while F_j is exact, so jumps of uniform densities cost
+    nothing; inside a cell the map inverts F_j exactly.
     """
 
     kind = "ordered chain (grid)"
 
-    def __init__(self, cols, names, dists, shifts, lows, highs, grid_size: int):
-        self.cols, self.names, self.dists = list(cols), list(names), list(dists)
-        self.offsets = np.concatenate([[0.0], np.cumsum(shifts)]) if len(shifts) else np.zeros(1)
+    def __init__(self, cols, names, dists, shifts, lows, highs, grid_size: int, *, head=None, tail=None,
+                 shift_cols=None):
+        self.names, self.dists = list(names), list(dists)
+        self.shifts = list(shifts)
+        self.head, self.tail = head, tail            # (fixed velocity, _ProductShift) or None
+        const = [s if not isinstance(s, _ProductShift) else 0.0 for s in self.shifts]
+        self.offsets = np.concatenate([[0.0], np.cumsum(const)])
         self.lo = np.array([max(lo, d.support[0]) for lo, d in zip(lows, dists)])
         self.hi = np.array([min(hi, d.support[1]) for hi, d in zip(highs, dists)])
         for name, lo, hi in zip(names, self.lo, self.hi):
@@ -459,13 +569,24 @@ class _OrderedChain:
                 raise ValueError(f"constraints: {name} cannot satisfy them: its prior support and the "
                                  f"bounds set by fixed neighbours leave [{lo:g}, {hi:g}]")
         self._cdf_lo = np.array([float(d.cdf(lo)) for d, lo in zip(dists, self.lo)])
-        self._tables = self._build(grid_size)
-        coarse = self._build(max(grid_size // 2, 16))
-        mass = self._tables[3][-1, -1]
+        # columns: the chain's velocities, then the free gradients / thicknesses of random shifts
+        self._random = [s for s in [head and head[1], *self.shifts, tail and tail[1]]
+                        if isinstance(s, _ProductShift)]
+        self.cols = list(cols) + [shift_cols[n] for s in self._random for n in s.free]
+        self._random_pos = {}
+        pos = len(self.dists)
+        for s in self._random:
+            self._random_pos[id(s)] = {n: pos + i for i, n in enumerate(s.free)}
+            pos += len(s.free)
+        if self._random:
+            grid_size = max(grid_size // 4, 16)   # the random-shift convolution costs (grid points)^2
+        self._tables, mass = self._build(grid_size)
+        _, coarse = self._build(max(grid_size // 2, 16))
         if not mass > 0:
             raise ValueError(f"constraints: the order {' <= '.join(names)} has probability 0 under the priors")
+        self._mass = mass
         self.log_mass = math.log(mass)
-        self.log_mass_error = abs(self.log_mass - math.log(coarse[3][-1, -1])) if coarse[3][-1, -1] > 0 else np.inf
+        self.log_mass_error = abs(self.log_mass - math.log(coarse)) if coarse > 0 else np.inf
 
     # F_j and its inverse in z-space
     def _F(self, j, z):
@@ -475,6 +596,21 @@ class _OrderedChain:
     def _F_inv(self, j, f):
         x = self.dists[j].ppf(np.asarray(f) + self._cdf_lo[j])
         return np.clip(x, self.lo[j], self.hi[j]) - self.offsets[j]
+
+    @staticmethod
+    def _shifted_mass(G, grid, shift, y):
+        """integral Q(y - x) dG(x) for each y (1-D), cell masses of G times cell-averaged Q."""
+        dG = np.diff(G)
+        out = np.empty(np.shape(y))
+        y = np.asarray(y, dtype=float)
+        for start in range(0, y.size, 256):
+            yy = y[start:start + 256, None]
+            with np.errstate(invalid="ignore"):
+                d = yy - grid[None, :]
+            d = np.where(np.isnan(d), np.inf, d)   # inf - inf only in cells of negligible mass
+            Q = shift.cdf(d)
+            out[start:start + 256] = (dG[None, :] * 0.5 * (Q[:, :-1] + Q[:, 1:])).sum(axis=1)
+        return out
 
     def _build(self, n):
         q = np.linspace(0.0, 1.0, n)
@@ -488,12 +624,27 @@ class _OrderedChain:
         dF = np.maximum(np.diff(F, axis=1), 0.0)
         G = np.empty_like(F)
         Gbar = np.empty_like(dF)
-        prev = np.ones(grid.size)
+        if self.head is None:
+            prev = np.ones(grid.size)
+        else:
+            with np.errstate(invalid="ignore"):
+                prev = self.head[1].cdf(np.where(np.isinf(grid), grid, grid - self.head[0]))
         for j in range(len(self.dists)):
             Gbar[j] = 0.5 * (prev[:-1] + prev[1:])
             G[j] = np.concatenate([[0.0], np.cumsum(Gbar[j] * dF[j])])
-            prev = G[j]
-        return grid, F, Gbar, G
+            if j < len(self.shifts) and isinstance(self.shifts[j], _ProductShift):
+                prev = self._shifted_mass(G[j], grid, self.shifts[j], grid)
+            else:
+                prev = G[j]
+        if self.tail is None:
+            mass = G[-1, -1]
+        else:
+            mass = float(self._shifted_mass(G[-1], grid, self.tail[1], np.array([self._tail_z]))[0])
+        return (grid, F, Gbar, G), mass
+
+    @property
+    def _tail_z(self):
+        return self.tail[0] - self.offsets[-1]
 
     def _G_at(self, j, z):
         grid, F, Gbar, G = self._tables
@@ -508,14 +659,79 @@ class _OrderedChain:
             f = F[j, i] + np.where(w > 0, (t - G[j, i]) / w, 0.0)
         return self._F_inv(j, np.clip(f, F[j, i], F[j, i + 1]))
 
+    def _below_random(self, j, z_next, shift, u_z):
+        """z_j given z_{j+1} across a random shift: density Q(z_{j+1} - z) dG_j(z), z_j + s_min <= z_{j+1}."""
+        grid, _, _, G = self._tables
+        cap = z_next - shift.s_min
+        G_cap = self._G_at(j, cap)
+        left = np.broadcast_to(grid[:-1], (z_next.size, grid.size - 1))
+        right = np.minimum(grid[None, 1:], cap[:, None])
+        G_left = np.broadcast_to(G[j, :-1], left.shape)
+        G_right = np.where(grid[None, 1:] <= cap[:, None], G[j, None, 1:], G_cap[:, None])
+        dG = np.where(left < cap[:, None], np.maximum(G_right - G_left, 0.0), 0.0)
+        with np.errstate(invalid="ignore"):
+            d_left, d_right = z_next[:, None] - left, z_next[:, None] - right
+        Q_left = shift.cdf(np.where(np.isnan(d_left), np.inf, d_left))
+        Q_right = shift.cdf(np.where(np.isnan(d_right), np.inf, d_right))
+        w = dG * 0.5 * (Q_left + Q_right)
+        t = self._pick_G(G_left, dG, w, u_z)   # cell i spans G values [G_left_i, G_left_i + dG_i]
+        return np.minimum(self._G_inv(j, t), cap)
+
+    @staticmethod
+    def _pick_G(G_left, dG, w, u):
+        W = np.cumsum(w, axis=1)
+        target = u * W[:, -1]
+        i = np.minimum((W < target[:, None]).sum(axis=1), w.shape[1] - 1)
+        rows = np.arange(w.shape[0])
+        W_prev = np.where(i > 0, W[rows, np.maximum(i - 1, 0)], 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            frac = np.clip(np.where(w[rows, i] > 0, (target - W_prev) / w[rows, i], 0.0), 0.0, 1.0)
+        return G_left[rows, i] + frac * dG[rows, i]
+
+    def _draw_shift(self, shift, room, u):
+        pos = self._random_pos[id(shift)]
+        u_g = u[:, pos[shift.g_name]] if shift.g_name in pos else None
+        u_h = u[:, pos[shift.h_name]] if shift.h_name in pos else None
+        g, h = shift.draw_given_room(room, u_g, u_h)
+        out = {}
+        if shift.g_name in pos:
+            out[pos[shift.g_name]] = g
+        if shift.h_name in pos:
+            out[pos[shift.h_name]] = h
+        return out
+
     def from_unit(self, u):
+        out = np.empty(u.shape)
+        for start in range(0, u.shape[0], 512):
+            sl = slice(start, start + 512)
+            out[sl] = self._from_unit_rows(u[sl])
+        return out
+
+    def _from_unit_rows(self, u):
         m = len(self.dists)
-        z = np.empty(u.shape)
-        z[:, m - 1] = self._G_inv(m - 1, u[:, m - 1] * self._tables[3][-1, -1])
+        out = np.empty(u.shape)
+        z = np.empty((u.shape[0], m))
+        if self.tail is None:
+            z[:, m - 1] = self._G_inv(m - 1, u[:, m - 1] * self._tables[3][-1, -1])
+        else:
+            z_tail = np.full(u.shape[0], self._tail_z)
+            z[:, m - 1] = self._below_random(m - 1, z_tail, self.tail[1], u[:, m - 1])
+            for c, v in self._draw_shift(self.tail[1], z_tail - z[:, m - 1], u).items():
+                out[:, c] = v
         for j in range(m - 2, -1, -1):
-            t = u[:, j] * self._G_at(j, z[:, j + 1])
-            z[:, j] = np.minimum(self._G_inv(j, t), z[:, j + 1])  # guard against last-bit rounding
-        return z + self.offsets
+            shift = self.shifts[j]
+            if isinstance(shift, _ProductShift):
+                z[:, j] = self._below_random(j, z[:, j + 1], shift, u[:, j])
+                for c, v in self._draw_shift(shift, z[:, j + 1] - z[:, j], u).items():
+                    out[:, c] = v
+            else:
+                t = u[:, j] * self._G_at(j, z[:, j + 1])
+                z[:, j] = np.minimum(self._G_inv(j, t), z[:, j + 1])  # guard against last-bit rounding
+        if self.head is not None:
+            for c, v in self._draw_shift(self.head[1], z[:, 0] - self.head[0], u).items():
+                out[:, c] = v
+        out[:, :m] = z + self.offsets
+        return out
 
     def sample(self, n, rng):
         return self.from_unit(rng.random((n, len(self.cols))))
@@ -535,7 +751,7 @@ class _BoundedSum:
     kind = "bounded sum (grid)"
     _N_QUANTILE = 256
 
-    def __init__(self, cols, names, dists, low, high, grid_size: int):
+    def __init__(self, cols, names, dists, low, high, grid_size: int, label: str):
         self.cols, self.names, self.dists = list(cols), list(names), list(dists)
         self.low, self.high = float(low), float(high)
         self.a = np.array([d.support[0] for d in dists])
@@ -549,8 +765,7 @@ class _BoundedSum:
         mass = self._R[0][1][0] if len(dists) > 1 else self._R_last(np.zeros(1))[0]
         cmass = coarse[0][1][0] if len(dists) > 1 else mass
         if not mass > 0:
-            raise ValueError(f"constraints: {_number(self.low)} <= {' + '.join(names)} <= "
-                             f"{_number(self.high)} has probability 0 under the priors")
+            raise ValueError(f"constraints: {label} has probability 0 under the priors of {', '.join(names)}")
         self.log_mass = math.log(mass)
         self.log_mass_error = abs(self.log_mass - math.log(cmass)) if cmass > 0 else np.inf
 
@@ -676,8 +891,8 @@ class _MonteCarloBlock:
         raise NotImplementedError(
             "from_unit_cube: no exact unit-cube map for the coupled constraint(s) "
             f"{'; '.join(link.text() for link in self.links)} among {', '.join(self.names)}; "
-            "fix the gradient, or allow the layer below to be slower (slower_allowed), or use "
-            "log_prob/sample (MCMC) instead of nested sampling")
+            "fix the gradient, allow the layer below to be slower (slower_allowed), parameterise by "
+            "thickness without total-depth bounds, or use log_prob/sample (MCMC) instead of nested sampling")
 
     def sample(self, n, rng):
         out, have = [], 0
@@ -806,9 +1021,24 @@ class JointPrior:
         orders = []      # (lower, upper, shift) between two free parameters
         sums = []        # (_TotalDepth, constant part)
         general = []     # links that need Monte Carlo
+        heads, tails = {}, {}   # random shift from / to a fixed velocity: name -> (value, shift)
         for link in self._links:
             kind = self._structure(link)
-            if kind[0] == "order":
+            if kind[0] == "order" and isinstance(kind[3], tuple):
+                _, a, b, (g_name, h_name) = kind
+                g = self.priors[g_name] if g_name in col else self.fixed[g_name]
+                h = self.priors[h_name] if h_name in col else self.fixed[h_name]
+                shift = _ProductShift(g, h, g_name, h_name)
+                if a in col and b in col:
+                    orders.append((a, b, shift))
+                elif b in col:
+                    heads[b] = (self.fixed[a], shift)
+                elif a in col:
+                    tails[a] = (self.fixed[b], shift)
+                else:
+                    general.append(link)
+                union([n for n in (a, b, g_name, h_name) if n in col])
+            elif kind[0] == "order":
                 _, a, b, shift = kind
                 a_free, b_free = a in col, b in col
                 ca = 0.0 if a is None else self.fixed.get(a)
@@ -854,29 +1084,38 @@ class JointPrior:
             c_orders = [o for o in orders if o[0] in mset]
             c_sums = [s for s in sums if s[2][0] in mset]
             c_general = [g for g in general if any(n in mset for n in g.names)]
+            c_head = {n: heads[n] for n in members if n in heads}
+            c_tail = {n: tails[n] for n in members if n in tails}
             bounded = any(math.isfinite(lows[n]) or math.isfinite(highs[n]) for n in members)
             dists = [self.priors[n] for n in members]
             cols = [col[n] for n in members]
-            if c_general or (c_sums and (c_orders or bounded)):
+            if c_general or (c_sums and (c_orders or bounded or c_head or c_tail)):
                 links = [lk for lk in self._links if any(n in mset for n in lk.names)]
                 blocks.append(_MonteCarloBlock(cols, members, dists, links, self.fixed, seed=seed))
             elif c_sums:
                 link, const, free = c_sums[0]
                 blocks.append(_BoundedSum([col[n] for n in free], free, [self.priors[n] for n in free],
-                                          link.low - const, link.high - const, grid_size))
-            elif c_orders or bounded:
-                chain = self._chain_order(members, c_orders)
+                                          link.low - const, link.high - const, grid_size, link.text()))
+            elif c_orders or bounded or c_head or c_tail:
+                random = [s for _, _, s in c_orders if isinstance(s, _ProductShift)]
+                random += [v[1] for v in (*c_head.values(), *c_tail.values())]
+                shift_names = {n for r in random for n in r.free}
+                chain = self._chain_order([n for n in members if n not in shift_names], c_orders)
                 shift = {(a, b): s for a, b, s in c_orders}
                 shifts = [shift[(chain[j], chain[j + 1])] for j in range(len(chain) - 1)]
                 blocks.append(_OrderedChain([col[n] for n in chain], chain, [self.priors[n] for n in chain],
                                             shifts, [lows[n] for n in chain], [highs[n] for n in chain],
-                                            grid_size))
+                                            grid_size, head=c_head.get(chain[0]), tail=c_tail.get(chain[-1]),
+                                            shift_cols=col))
             else:
                 blocks.append(_Independent(cols[0], dists[0]))
         return blocks
 
     def _structure(self, link):
-        """Classify a constraint: ('order', a, b, shift) | ('bound', name, lo, hi) | ('sum',) | ('general',)."""
+        """Classify a constraint: ('order', a, b, shift) | ('bound', name, lo, hi) | ('sum',) | ('general',).
+
+        ``shift`` is a number, or (gradient name, thickness name) for the random rise g h.
+        """
         if isinstance(link, _DepthStep):
             a = None if link.k == 1 else f"depth_{link.k - 1}"
             return ("order", a, f"depth_{link.k}", 0.0)
@@ -892,6 +1131,8 @@ class JointPrior:
         if g is not None and all(n in self.fixed for n in link.thickness_names):
             h = link.thickness({n: self.fixed[n] for n in link.thickness_names})
             return ("order", link.lower, link.upper, g * h)
+        if not self.depth_parameter:
+            return ("order", link.lower, link.upper, (link.gradient, link.thickness_names[0]))
         return ("general",)
 
     @staticmethod
@@ -982,6 +1223,8 @@ class JointPrior:
         Parameters
         ----------
         u : array (batch, D) or (D,), values in [0, 1]
+            Use the open interval: 0 or 1 send unbounded priors to -inf or +inf. At the
+            edge of a constraint the outputs satisfy it up to last-bit rounding.
 
         Returns
         -------

@@ -62,6 +62,7 @@ def write_atomic(path: Path, data: bytes | str) -> None:
     mode = "wb" if isinstance(data, bytes) else "w"
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
+        os.chmod(tmp, 0o644)
         with os.fdopen(fd, mode) as fh:
             fh.write(data)
             fh.flush()
@@ -443,6 +444,7 @@ def write_outputs(folder: Path, config: RunConfig, problem: Problem, result: Sam
     fd, tmp = tempfile.mkstemp(dir=folder, prefix=".posterior.nc.", suffix=".tmp")
     os.close(fd)
     try:
+        os.chmod(tmp, 0o644)
         idata.to_netcdf(tmp)
         os.replace(tmp, folder / "posterior.nc")
     finally:
@@ -457,6 +459,9 @@ def write_outputs(folder: Path, config: RunConfig, problem: Problem, result: Sam
     write_atomic(folder / "convergence.txt", report.summary() + "\n")
     write_atomic(folder / "config.toml", Path(config.path).read_bytes())
     resolved = {k: v for k, v in dataclasses.asdict(config).items() if k != "raw"}
+    for key in ("path", "picks", "sources", "receivers", "output"):
+        if resolved.get(key) is not None:
+            resolved[key] = str(Path(resolved[key]).resolve())
     resolved["fingerprint"] = fingerprint(config)
     resolved["parameters"] = problem.names
     resolved["python"] = sys.version.split()[0]

@@ -388,3 +388,20 @@ def test_thin_layer_staircase_converges_to_gradient(run):
         errors.append(np.max(np.abs(t / target - 1)))
     assert all(b < a for a, b in zip(errors, errors[1:])), errors
     assert errors[-1] < 2e-3, errors
+
+
+# ================================================ 5. an end exactly on an interface
+def test_end_exactly_on_an_interface_is_the_limit_from_either_side(run):
+    # h = 1 km, v1 = 1.5 over v2 = 2 km/s; source on the interface, receiver at the surface, x = 2 km.
+    # Least time (Fermat with a leg along the interface): leave along the interface at v2, climb at
+    # the critical angle: T = x/v2 + h sqrt(1/v1^2 - 1/v2^2) = 1 + sqrt(0.444444 - 0.25) = 1.440959 s
+    # (critical distance h tan(theta_c) = 0.75 / 0.661438 = 1.1339 km < 2 km); the straight line
+    # sqrt(1 + 4) / 1.5 = 1.490712 s is slower. The first arrival is continuous in the source depth
+    # (Fermat), so the value on the interface is the limit from just above and just below.
+    m = LayerModel.build([1.0], [1.5, 2.0], vpvs=2.0)
+    expected, _ = fermat_time([(1.0, 1.5)], 2.0, v_head=2.0)
+    assert expected == pytest.approx(1.440958551844098, rel=1e-12)
+    for zs in (1.0 - 1e-9, 1.0 + 1e-9):
+        assert run(m, "P", [2.0], zs, 0.0).time[0, 0] == pytest.approx(expected, rel=1e-8), zs
+    on = run(m, "P", [2.0, 2.0], [1.0, 0.0], [0.0, 1.0])  # source on it; receiver on it
+    np.testing.assert_allclose(on.time[0], expected, rtol=1e-8)

@@ -1,7 +1,9 @@
 """Textbook checks of the travel-time engine with worked numbers.
 
-Refraction formulas: Telford, Geldart & Sheriff, Applied Geophysics, 2nd ed. (1990), ch. 4;
-Kearey, Brooks & Hill, An Introduction to Geophysical Exploration, 3rd ed. (2002), ch. 5.
+Refraction formulas (intercept time, crossover and critical distances, hidden layer,
+low-velocity layer): Telford, Geldart & Sheriff, Applied Geophysics, 2nd ed. (1990), ch. 4;
+Kearey, Brooks & Hill, An Introduction to Geophysical Exploration, 3rd ed. (2002), ch. 5
+(formulas from memory; every worked number below is recomputed in the comments).
 Linear-gradient half-space: Shearer, Introduction to Seismology, 2nd ed. (2009), ch. 4
 (T = (2/g) asinh(g x / 2 v0) for a surface source and receiver; quoted from memory and
 re-derived below from the closed-form X(p), T(p) of a linear-gradient layer).
@@ -46,7 +48,7 @@ def grad_layer(p, v1, v2, g):
 
 
 # ======================================================= two-layer refraction
-# Worked example: h = 20 m, v1 = 1000 m/s over v2 = 3000 m/s.
+# Telford et al. 1990 ch. 4 / Kearey et al. 2002 ch. 5 (from memory). Worked example: h = 20 m, v1 = 1000 m/s over v2 = 3000 m/s.
 #   sin(theta_c) = v1/v2 = 1/3, cos(theta_c) = sqrt(8)/3 = 0.9428090, tan(theta_c) = 1/sqrt(8) = 0.3535534
 #   intercept   t_i = 2 h cos(theta_c) / v1 = 40 * 0.9428090 / 1000 = 0.03771236 s
 #   critical    x_crit = 2 h tan(theta_c) = 40 * 0.3535534 = 14.14214 m
@@ -111,7 +113,7 @@ def test_two_layer_crossover_first_arrivals(run, forward):
 
 
 # ===================================================== multilayer refraction
-# v = 1000 / 2000 / 4000 m/s, h1 = 10 m, h2 = 20 m; t_i = 2 sum h_j cos(theta_j) / v_j.
+# Telford et al. 1990 ch. 4 (multilayer intercept times, from memory). v = 1000 / 2000 / 4000 m/s, h1 = 10 m, h2 = 20 m; t_i = 2 sum h_j cos(theta_j) / v_j.
 #   interface 1 (p = 1/2000): cos(theta_1) = sqrt(1 - 1/4) = 0.8660254
 #       t_i1 = 2 * 10 * 0.8660254 / 1000 = 0.01732051 s
 #   interface 2 (p = 1/4000): cos(theta_1) = sqrt(1 - 1/16) = 0.9682458, cos(theta_2) = sqrt(1 - 1/4) = 0.8660254
@@ -155,7 +157,7 @@ def test_multilayer_intercepts_and_first_arrivals(run, forward):
 
 
 # ============================================================ hidden layer
-# v1 = 1000 (h 20 m), v2 = 1500 (h 5 m, thin), v3 = 3000 m/s.
+# Hidden layer: Kearey et al. 2002 ch. 5; Telford et al. 1990 ch. 4 (from memory). v1 = 1000 (h 20 m), v2 = 1500 (h 5 m, thin), v3 = 3000 m/s.
 #   t_i1 (top of the thin layer, p = 1/1500): 2 * 20 * sqrt(1 - (2/3)^2) / 1000 = 40 * 0.745356 / 1000 = 0.02981424 s
 #   t_i2 (top of v3, p = 1/3000): 2 * (20 * sqrt(1 - 1/9) / 1000 + 5 * sqrt(1 - 1/4) / 1500)
 #        = 2 * (0.01885618 + 0.00288675) = 0.04348587 s
@@ -186,7 +188,7 @@ def test_hidden_layer(run, forward):
 
 
 # ====================================================== low-velocity layer
-# v1 = 1500 (h 20 m), v2 = 1000 (h 10 m, LVL), v3 = 3000 m/s.
+# Low-velocity layer: Kearey et al. 2002 ch. 5; Telford et al. 1990 ch. 4 (from memory). v1 = 1500 (h 20 m), v2 = 1000 (h 10 m, LVL), v3 = 3000 m/s.
 #   No head wave at interface 1 (v2 < v1).
 #   t_i (top of v3, p = 1/3000): 2 * (20 * sqrt(1 - 1/4) / 1500 + 10 * sqrt(1 - 1/9) / 1000)
 #        = 2 * (0.01154701 + 0.00942809) = 0.04195020 s
@@ -210,7 +212,7 @@ def test_low_velocity_layer(run, forward):
 
 
 # ================================================== linear-gradient half-space
-# v(z) = v0 + g z, surface source and receiver: X(p) = 2 sqrt(1 - p^2 v0^2) / (g p), and
+# Shearer, Introduction to Seismology, 2nd ed. 2009, ch. 4 (from memory). v(z) = v0 + g z, surface source and receiver: X(p) = 2 sqrt(1 - p^2 v0^2) / (g p), and
 # T = (2/g) asinh(g x / (2 v0)), p = 1 / (v0 sqrt(1 + (g x / 2 v0)^2)).
 # Worked: v0 = 2000 m/s, g = 0.5 /s, x = 8000 m: g x / (2 v0) = 1, T = 4 asinh(1) = 4 * 0.8813736 = 3.525494 s
 # (straight line along the surface: 8000/2000 = 4 s), p = 1 / (2000 sqrt 2) = 3.535534e-4 s/m.
@@ -228,7 +230,7 @@ def test_gradient_half_space_worked_number(run, forward):
     assert a.branch[0, 0] == forward.BRANCH_DIVING
 
 
-@pytest.mark.parametrize("rel_gradient", [1e-1, 1e-3, 1e-6, 1e-9, 1e-12])
+@pytest.mark.parametrize("rel_gradient", [1e-1, 1e-3, 1e-6, 1e-9, 1e-12, 1e-15, 1e-18])
 def test_gradient_half_space_including_g_to_zero(run, rel_gradient):
     # g chosen so that g * x_max / v0 = rel_gradient (x_max = 10 km)
     v0, xs = 2000.0, np.array([1.0, 100.0, 3000.0, 10000.0])
@@ -271,6 +273,7 @@ def test_gradient_source_above_datum_and_buried(run):
 
 
 # ======================================================== reflection hyperbola
+# t^2 = t0^2 + x^2/v^2 (common practice); image-source geometry for buried ends (common practice).
 # One layer h = 100 m, v = 2000 m/s: t0 = 2h/v = 0.1 s, t^2 = t0^2 + x^2/v^2;
 # x = 300 m: t^2 = 0.01 + 0.0225 = 0.0325, t = 0.1802776 s; p = x / (v^2 t) = 300 / (4e6 * 0.1802776) = 4.160251e-4 s/m.
 def test_reflection_hyperbola(run, forward):
@@ -301,6 +304,7 @@ def test_direct_to_receiver_above_datum(run):
 
 
 # ============================================================ S and fluids
+# A fluid has zero shear modulus, so S cannot propagate in it (common practice).
 def test_s_is_absent_in_a_fluid_top_layer(run, forward):
     # 1000 m of water over rock; S between surface ends is inf for every branch
     m = LayerModel.build([1000.0], [1500.0, 3000.0], vs=[0.0, 1700.0])

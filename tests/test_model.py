@@ -2,6 +2,9 @@
 
 Every bad input must raise ValueError whose message names the field and the layer
 (users number layers 1..N+1 from the top, N+1 being the half-space).
+
+Vp/Vs limit of a solid: bulk modulus K = rho (Vp^2 - 4/3 Vs^2) > 0  <=>  Vp/Vs > sqrt(4/3)
+(common practice); a fluid has Vs = 0 (Vp/Vs = inf).
 """
 
 from __future__ import annotations

@@ -1,0 +1,264 @@
+"""The ``invert`` command: help texts, ``check``, exit codes and messages, ``synth``, ``run``.
+
+Most commands are run in-process through ``invert.cli.main`` (fast); one test runs the
+installed ``invert`` script in a subprocess to check the entry point and the exit status
+seen by a shell. All data are small synthetic tables for invented surveys.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from invert.cli import build_parser, main
+from invert.data import read_picks
+
+pytestmark = pytest.mark.filterwarnings("ignore:More chains:UserWarning")
+
+LINE_PICKS = """\
+# synthetic: P first arrivals over an invented site, 600 m/s over 1800 m/s, interface at 5 m;
+# exact first-arrival times rounded to 0.1 ms; metres and seconds
+source,receiver,wave,time,sigma,distance,source_depth,receiver_depth
+A,g01,P,0.0050,0.0005,3,0,0
+A,g02,P,0.0100,0.0005,6,0,0
+A,g03,P,0.0150,0.0005,9,0,0
+A,g04,P,0.0200,0.0005,12,0,0
+A,g05,P,0.0240,0.0005,15,0,0
+A,g06,P,0.0257,0.0005,18,0,0
+A,g07,P,0.0274,0.0005,21,0,0
+A,g08,P,0.0290,0.0005,24,0,0
+A,g09,P,0.0307,0.0005,27,0,0
+A,g10,P,0.0324,0.0005,30,0,0
+"""
+
+GOOD_RUN = """\
+title = "synthetic two-layer line (command-line checks)"
+units = "m"
+[data]
+picks = "picks.csv"
+[model]
+layers = 1
+vpvs_mode = "none"
+[prior]
+thickness_1 = { dist = "uniform", low = 1.0, high = 15.0 }
+vp_1 = { dist = "uniform", low = 200.0, high = 1200.0 }
+vp_2 = { dist = "uniform", low = 1000.0, high = 3000.0 }
+[sampler]
+walkers = 12
+ensembles = 1
+steps = 40
+burn = 10
+seed = 5
+[output]
+folder = "run"
+"""
+
+
+@pytest.fixture
+def good(tmp_path):
+    (tmp_path / "picks.csv").write_text(LINE_PICKS)
+    (tmp_path / "run.toml").write_text(GOOD_RUN)
+    return tmp_path / "run.toml"
+
+
+def _invert_command() -> list[str]:
+    script = Path(sys.executable).with_name("invert")
+    return [str(script)] if script.exists() else [sys.executable, "-m", "invert.cli"]
+
+
+# ---------------------------------------------------------------------------- help
+def help_text(argv, capsys) -> str:
+    with pytest.raises(SystemExit) as info:
+        main(argv)
+    assert info.value.code == 0
+    return capsys.readouterr().out
+
+
+def test_top_level_help_lists_the_subcommands(capsys):
+    text = help_text(["--help"], capsys)
+    for command in ("run", "check", "synth", "report"):
+        assert command in text
+    assert "licensed professionals" in text  # the caution of the README is part of the help
+
+
+# options each subcommand promises (README "A short tour" and the issue's list of options)
+OPTIONS = {
+    "run": ["config", "--resume", "--overwrite", "--steps", "--report", "--strict", "--quiet", "--no-progress"],
+    "check": ["config"],
+    "synth": ["spec"],
+    "report": ["run_dir", "--png"],
+}
+
+
+@pytest.mark.parametrize("command", list(OPTIONS))
+def test_subcommand_help_mentions_its_options(command, capsys):
+    text = help_text([command, "--help"], capsys)
+    for option in OPTIONS[command]:
+        assert option in text, f"{option} missing from 'invert {command} --help'"
+
+
+def test_every_option_has_a_help_text():
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.choices and isinstance(a.choices, dict))
+    for name, subparser in sub.choices.items():
+        for action in subparser._actions:
+            if action.dest != "help":
+                assert action.help and len(action.help) > 10, f"invert {name}: {action.dest} has no help"
+
+
+def test_missing_argument_is_a_usage_error(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["run"])
+    assert info.value.code == 2
+    assert "config" in capsys.readouterr().err
+
+
+# ---------------------------------------------------------------------------- check
+def test_check_good_config_prints_the_parameters(good, capsys):
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert str(good) in out
+    for name in ("thickness_1", "vp_1", "vp_2"):
+        assert name in out
+    assert "3 free parameters" in out
+    assert "uniform on [200, 1200] m/s" in out
+    assert "10 picks" in out
+
+
+BAD = [
+    # (id, text replaced -> replacement, key that must be named on stderr)
+    ("typo", ("walkers = 12", "walker = 12"), "walker"),
+    ("odd-walkers", ("walkers = 12", "walkers = 13"), "walkers"),
+    ("burn-not-below-steps", ("burn = 10", "burn = 40"), "burn"),
+    ("unknown-vpvs-mode", ('vpvs_mode = "none"', 'vpvs_mode = "ratio"'), "vpvs_mode"),
+    ("missing-picks-file", ('picks = "picks.csv"', 'picks = "gone.csv"'), "picks"),
+    ("missing-prior", ('vp_2 = { dist = "uniform", low = 1000.0, high = 3000.0 }', ""), "vp_2"),
+]
+
+
+@pytest.mark.parametrize("old_new, key", [b[1:] for b in BAD], ids=[b[0] for b in BAD])
+def test_check_bad_config_exits_2_naming_the_key(good, capsys, old_new, key):
+    old, new = old_new
+    good.write_text(GOOD_RUN.replace(old, new))
+    assert main(["check", str(good)]) == 2
+    captured = capsys.readouterr()
+    assert captured.err.startswith("error: ")
+    assert key in captured.err and str(good) in captured.err
+    assert "Traceback" not in captured.err
+
+
+def test_bad_data_file_exits_2_naming_file_and_line(good, capsys):
+    (good.parent / "picks.csv").write_text(LINE_PICKS.replace("A,g03,P,0.0150", "A,g03,P,soon"))
+    assert main(["check", str(good)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "picks.csv" in err and "line 6" in err and "time" in err
+
+
+def test_installed_command_exit_status_and_stderr(good):
+    # the console script itself: a shell sees status 2 and a one-line error naming the key
+    good.write_text(GOOD_RUN.replace("walkers = 12", "walkers = 13"))
+    proc = subprocess.run(_invert_command() + ["check", str(good)], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 2
+    assert proc.stderr.startswith("error: ") and "walkers" in proc.stderr
+    assert proc.stdout == ""
+
+
+# ---------------------------------------------------------------------------- synth
+LINE_SPEC = """\
+title = "synthetic line over an invented two-layer site"
+units = "m"
+seed = 3
+[model]
+thickness = [5.0]
+vp = [600.0, 1800.0]
+vpvs = [2.0, 2.0]
+[survey]
+kind = "line"
+shots = [0.0, 40.0]
+receivers = { first = 2.0, last = 38.0, spacing = 4.0 }
+waves = ["P"]
+sigma = 0.0005
+[output]
+picks = "line.csv"
+"""
+
+
+def refraction_first_arrival(x, h, v1, v2):
+    """First arrival over one layer on a half-space, surface shot and receiver (common practice):
+    the earlier of the direct wave x / v1 and the head wave x / v2 + 2 h cos(i) / v1, sin(i) = v1 / v2."""
+    direct = x / v1
+    head = x / v2 + 2.0 * h * np.sqrt(1.0 - (v1 / v2) ** 2) / v1
+    return np.minimum(direct, head)
+
+
+def test_synth_writes_picks_that_read_back(tmp_path, capsys):
+    spec = tmp_path / "survey.toml"
+    spec.write_text(LINE_SPEC)
+    assert main(["synth", str(spec)]) == 0
+    assert "line.csv" in capsys.readouterr().out
+    picks = read_picks(tmp_path / "line.csv")
+    assert picks.n_picks == 2 * 10  # two shots x ten receivers, P only
+    assert set(np.asarray(picks.wave)) == {"P"} and np.all(np.asarray(picks.sigma) == 0.0005)
+    x = np.asarray(picks.distance)
+    assert sorted(set(x.tolist())) == [2.0, 6.0, 10.0, 14.0, 18.0, 22.0, 26.0, 30.0, 34.0, 38.0]
+    z = (np.asarray(picks.time) - refraction_first_arrival(x, 5.0, 600.0, 1800.0)) / 0.0005
+    assert np.all(np.abs(z) < 5) and 0.5 < z.std() < 1.6  # true times plus noise of the stated size
+    # same seed, same file; the header comment says the picks are synthetic
+    first = (tmp_path / "line.csv").read_text()
+    assert main(["synth", str(spec)]) == 0
+    assert (tmp_path / "line.csv").read_text() == first
+    assert first.startswith("# synthetic")
+
+
+NETWORK_SPEC = """\
+title = "synthetic two-event network in an invented region"
+units = "km"
+seed = 8
+[model]
+thickness = [30.0]
+vp = [6.2, 8.0]
+vpvs = [1.75, 1.75]
+[survey]
+kind = "network"
+waves = ["P", "S"]
+sigma = { P = 0.05, S = 0.1 }
+events = [{ name = "e1", x = 0.0, y = 0.0, depth = 8.0, origin_time = 2.0 },
+          { name = "e2", x = 10.0, y = 5.0, depth = 15.0, origin_time = 40.0 }]
+stations = [{ name = "s1", x = 20.0, y = 0.0 }, { name = "s2", x = -35.0, y = 10.0 },
+            { name = "s3", x = 60.0, y = -40.0 }]
+[output]
+picks = "quakes.csv"
+"""
+
+
+def test_synth_network_writes_tables_that_read_back(tmp_path):
+    spec = tmp_path / "survey.toml"
+    spec.write_text(NETWORK_SPEC)
+    assert main(["synth", str(spec)]) == 0
+    picks = read_picks(tmp_path / "quakes.csv", tmp_path / "sources.csv", tmp_path / "receivers.csv")
+    assert picks.n_picks == 2 * 3 * 2
+    assert not np.any(picks.depth_known) and not np.any(picks.origin_time_known)
+
+
+def test_synth_bad_spec_exits_2(tmp_path, capsys):
+    spec = tmp_path / "survey.toml"
+    spec.write_text(LINE_SPEC.replace('kind = "line"', 'kind = "lien"'))
+    assert main(["synth", str(spec)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "kind" in err and "survey.toml" in err
+
+
+# ---------------------------------------------------------------------------- run
+def test_run_steps_override_and_strict_exit_status(good, capsys):
+    # one ensemble can never be called converged, so --strict gives status 3; --steps
+    # overrides [sampler] steps
+    assert main(["run", str(good), "--steps", "30", "--quiet", "--no-progress", "--strict"]) == 3
+    summary = (good.parent / "run" / "convergence.json").read_text()
+    assert '"kept_steps": 20' in summary
+    # a second run into the same folder needs --overwrite (or --resume)
+    assert main(["run", str(good), "--quiet", "--no-progress"]) == 2
+    assert "--overwrite" in capsys.readouterr().err

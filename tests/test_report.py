@@ -1,0 +1,384 @@
+"""Tests of invert.report: the HTML and Markdown report of a run folder.
+
+The run folder is made once per module from an invented synthetic site (a soft
+layer 4 m thick over a stiffer half-space, P and S first arrivals along a short
+line; every number here is made up for the test), with a deliberately short
+sampler run so that it finishes in seconds. The last test opens the report in
+a real headless browser (Chromium).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import os
+import re
+import shutil
+import struct
+import subprocess
+import tomllib
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from invert import posterior as post
+from invert import report
+from invert.data import write_picks
+from invert.model import LayerModel
+from invert.synthetic import layout, synthesize
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+TRUE_MODEL = {"thickness": [4.0], "vp": [500.0, 1800.0], "vs": [220.0, 600.0]}
+
+RUN_TOML = """\
+title = "Test site: short synthetic line"
+units = "m"
+
+[data]
+picks = "picks.csv"
+
+[model]
+layers = 1
+vpvs_mode = "per_layer"
+
+[prior]
+thickness_1 = { dist = "uniform", low = 0.5, high = 15.0 }
+vp_1 = { dist = "uniform", low = 200.0, high = 1200.0 }
+vp_2 = { dist = "uniform", low = 600.0, high = 4000.0 }
+vpvs = { dist = "uniform", low = 1.5, high = 5.0 }
+
+[constraints]
+increasing_velocity = true
+
+[sampler]
+walkers = 16
+ensembles = 2
+steps = 150
+burn = 50
+seed = 3
+
+[output]
+folder = "out/run"
+
+[truth]
+thickness_1 = 4.0
+vp_1 = 500.0
+vp_2 = 1800.0
+vpvs_1 = 2.2727273
+vpvs_2 = 3.0
+"""
+
+
+def _write_site(folder: Path) -> None:
+    """Synthetic picks (seeded noise) and the run description in ``folder``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    model = LayerModel.build(TRUE_MODEL["thickness"], TRUE_MODEL["vp"], vs=TRUE_MODEL["vs"])
+    cols = layout({"kind": "line", "shots": [-1.0, 45.0], "receivers": [2.0 + 4.0 * i for i in range(11)],
+                   "waves": ["P", "S"]})
+    sigma = np.where(cols["wave"] == "P", 0.001, 0.002)
+    picks = synthesize(model, cols, sigma, np.random.default_rng(5))
+    write_picks(folder / "picks.csv", picks, comment="synthetic picks for the report tests (invented site)")
+    (folder / "run.toml").write_text(RUN_TOML)
+
+
+@pytest.fixture(scope="module")
+def run_dir(tmp_path_factory):
+    """A finished run folder with its report (PNG figures too), started from a relative config path."""
+    from invert.run import run_inversion
+
+    base = tmp_path_factory.mktemp("report")
+    _write_site(base / "site")
+    here = os.getcwd()
+    os.chdir(base)  # the run records paths relative to this folder, as a user's run would
+    try:
+        out = run_inversion(Path("site") / "run.toml", quiet=True, progress=False)
+    finally:
+        os.chdir(here)
+    folder = (base / out.folder).resolve()
+    path = report.write_report(folder, png=True)  # from another working folder than the run
+    assert path == folder / "report.html"
+    return folder
+
+
+@pytest.fixture(scope="module")
+def page(run_dir):
+    return (run_dir / "report.html").read_text(encoding="utf-8")
+
+
+def _png_size(data: bytes) -> tuple[int, int]:
+    assert data[:8] == PNG_SIGNATURE, "not a PNG"
+    assert data[12:16] == b"IHDR"
+    return struct.unpack(">II", data[16:24])
+
+
+# ------------------------------------------------------------------ files and structure
+def test_both_files_written_atomically(run_dir):
+    assert (run_dir / "report.html").stat().st_size > 10_000
+    assert (run_dir / "report.md").stat().st_size > 1_000
+    leftovers = [p.name for p in run_dir.iterdir() if p.name.endswith(".tmp")]
+    assert leftovers == []
+
+
+def test_every_section_heading_in_both_files(run_dir, page):
+    md = (run_dir / "report.md").read_text(encoding="utf-8")
+    for anchor, title in report.SECTIONS:
+        assert f'<h2 id="{anchor}">{html.escape(title)}</h2>' in page
+        assert f"\n## {title}\n" in md
+    # in the order of SECTIONS
+    positions = [page.index(f'<h2 id="{a}">') for a, _ in report.SECTIONS]
+    assert positions == sorted(positions)
+
+
+def test_every_figure_embedded_as_png_data(page):
+    srcs = re.findall(r'<img\s[^>]*src="([^"]*)"', page)
+    assert len(srcs) == len(report.FIGURES)
+    for key, _ in report.FIGURES:
+        assert f'id="figure-{key}"' in page
+    for src in srcs:
+        assert src.startswith("data:image/png;base64,")
+        data = base64.b64decode(src.split(",", 1)[1], validate=True)
+        width, height = _png_size(data)
+        assert width >= 400 and height >= 300
+
+
+def test_no_outside_resources(page):
+    for value in re.findall(r'\bsrc\s*=\s*"([^"]*)"', page):
+        assert value.startswith("data:"), value[:60]
+    for value in re.findall(r'\bhref\s*=\s*"([^"]*)"', page):
+        assert value.startswith("#"), value
+    lowered = page.lower()
+    assert "<link" not in lowered and "<script" not in lowered and "@import" not in lowered
+    assert "http://" not in lowered and "https://" not in lowered
+
+
+def test_png_option_writes_figure_files_referenced_by_markdown(run_dir):
+    md = (run_dir / "report.md").read_text(encoding="utf-8")
+    for key, _ in report.FIGURES:
+        png = run_dir / "figures" / f"{key}.png"
+        _png_size(png.read_bytes())
+        assert f"](figures/{key}.png)" in md
+
+
+def test_markdown_without_png_lists_figures_instead():
+    fig = report._Figure("corner", "Pairwise marginals", "caption text", PNG_SIGNATURE)
+    verdict = report._Para("not converged", "bad")
+    md = report._render_markdown("t", [fig], "meta", verdict, png=False)
+    assert "![" not in md and "figures/corner.png" in md and "caption text" in md
+
+
+# ------------------------------------------------------------------ content
+def _section(page: str, anchor: str) -> str:
+    """HTML of one report section."""
+    start = page.index(f'<h2 id="{anchor}">')
+    end = page.find("<h2 ", start + 1)
+    return page[start:end if end > 0 else len(page)]
+
+
+def _row(page: str, first_cell: str) -> list[str]:
+    """Cells of the first table row whose first cell is ``first_cell``."""
+    m = re.search(r"<tr><td[^>]*>" + re.escape(html.escape(first_cell)) + r"</td>(.*?)</tr>", page)
+    assert m, f"no table row for {first_cell}"
+    return [html.unescape(c) for c in re.findall(r"<td[^>]*>(.*?)</td>", m.group(1))]
+
+
+def test_parameter_table_matches_the_posterior_file(run_dir, page):
+    import arviz as az
+
+    idata = az.from_netcdf(run_dir / "posterior.nc")
+    for name in ("thickness_1", "vp_2", "vpvs_1", "depth_1", "vs_2"):
+        x = np.asarray(idata.posterior[name]).ravel()
+        cells = _row(_section(page, "estimates"), name)
+        assert cells[0] == ("–" if name.startswith("vpvs") else ("m" if name[0] in "td" else "m/s"))
+        assert cells[1] == report._num(np.median(x))
+        assert cells[2] == report._num(np.mean(x))
+        lo, hi = np.quantile(x, [0.025, 0.975])
+        assert cells[4] == f"{report._num(lo)} – {report._num(hi)}"
+    # true values of the synthetic model beside sampled and derived quantities
+    est = _section(page, "estimates")
+    assert _row(est, "thickness_1")[-1] == report._num(4.0)
+    assert _row(est, "depth_1")[-1] == report._num(4.0)
+    assert _row(est, "vs_2")[-1] == report._num(600.0)
+
+
+def test_convergence_verdict_is_never_upgraded(run_dir, page):
+    conv = json.loads((run_dir / "convergence.json").read_text())
+    if conv["converged"]:
+        assert "Sampling converged" in page
+    else:
+        assert "did NOT converge" in page and "Sampling converged" not in page
+    for converged in (False, None, "yes"):  # anything but a JSON true is not converged
+        fake = SimpleNamespace(run=SimpleNamespace(convergence={"converged": converged, "verdict": "v",
+                                                                "parameters": {}}))
+        blocks = report._section_convergence(fake)
+        text = " ".join(b.text for b in blocks if isinstance(b, report._Para))
+        assert "did NOT converge" in text and not text.startswith("Yes")
+    fake = SimpleNamespace(run=SimpleNamespace(convergence={"converged": True, "verdict": "Converged: ...",
+                                                            "parameters": {}}))
+    paras = [b for b in report._section_convergence(fake) if isinstance(b, report._Para)]
+    assert paras[0].kind == "good" and "NOT" not in paras[0].text
+
+
+def test_derived_quantities_and_site_class(run_dir, page):
+    # derived rows exist with the synthetic true value beside them
+    page = _section(page, "derived")
+    cells = _row(page, "depth of interface 1")
+    assert cells[-1] == report._num(4.0)
+    assert _row(page, "Vs30")[0] == "m/s"
+    true_vs30 = 30.0 / (4.0 / 220.0 + 26.0 / 600.0)  # time-averaged velocity over 30 m, by hand
+    assert _row(page, "Vs30")[-1] == report._num(true_vs30)
+    # the true half-space has Vs 600 m/s: no draw should reach 760 m/s, and the text must say so
+    assert "depth to Vs ≥ 760 m/s</td>" not in page
+    assert "Depth to Vs ≥ 760 m/s (taken as &#x27;bedrock-like&#x27; here" in page
+    assert "not reached in any draw" in page
+    # the site-class table sums to 100 % and the caveat is printed with it
+    probs = []
+    for label in ("A", "B", "C", "D", "E"):
+        text = _row(page, label)[1]
+        probs.append(0.0 if text.startswith("<") else float(text.replace("%", "").replace(">", "")))
+    assert abs(sum(probs) - 100.0) < 0.5
+    assert html.escape(post.SITE_CLASS_CAVEAT) in page
+    # the line is 46 m long: S rays turn well above 30 m, so Vs30 must be flagged
+    assert "deepest S ray turns above 30 m" in page
+
+
+def test_probability_statements_and_prior_constraint(page):
+    cells = _row(_section(page, "probabilities"), "layer 2 slower than layer 1 (half-space)")
+    assert cells[0].startswith("0 %") and "excluded by the prior" in cells[0]
+    assert len(cells) == 2  # P and S columns
+
+
+def test_flags_and_cautions(page):
+    flags = _section(page, "flags")
+    assert "Posterior predictive check" in flags and "p = " in flags
+    assert "Resolution: posterior against prior" in flags
+    assert html.escape(report.CAUTIONS) in page
+    assert "Synthetic data" in page
+
+
+def test_changed_data_outlier_and_missing_checkpoint(run_dir, tmp_path):
+    """A moved copy of the run whose picks file was edited afterwards: one pick made 50 ms late and the
+    noise model switched to the outlier mixture. The report must say that the files changed, name the
+    late pick as a likely outlier (by its line in the file) and draw traces without the checkpoint."""
+    resolved = json.loads((run_dir / "config_resolved.json").read_text())
+    copy = tmp_path / "moved" / "run"
+    copy.mkdir(parents=True)
+    for name in ("posterior.nc", "convergence.json"):
+        shutil.copy(run_dir / name, copy / name)
+    lines = (run_dir.parents[1] / "picks.csv").read_text().splitlines()  # site/picks.csv beside site/out/run
+    header = next(i for i, line in enumerate(lines) if not line.startswith("#"))
+    time_col = lines[header].split(",").index("time")
+    target = header + 7  # 0-based index of the edited line: a pick of the first shot
+    cells = lines[target].split(",")
+    cells[time_col] = repr(float(cells[time_col]) + 0.05)
+    lines[target] = ",".join(cells)
+    picks = tmp_path / "moved" / "edited_picks.csv"
+    picks.write_text("\n".join(lines) + "\n")
+    resolved.update(path=str(tmp_path / "gone" / "run.toml"), picks=str(picks))
+    (copy / "config_resolved.json").write_text(json.dumps(resolved))
+    (copy / "config.toml").write_text(RUN_TOML.replace("[sampler]", '[noise]\nmodel = "outlier_mixture"\n\n[sampler]'))
+    page = report.write_report(copy).read_text(encoding="utf-8")
+    flags = _section(page, "flags")
+    assert "differ from those of the run" in flags
+    assert "more likely outliers than not" in flags
+    assert f"line {target + 1} (" in flags
+    assert "kept steps only: no checkpoint file" in page
+
+
+def test_toml_text_round_trips():
+    table = {"title": 'a "quoted" title — ünïcode\\', "units": "m", "n": 3, "flag": True,
+             "data": {"picks": "/x y/picks.csv"},
+             "prior": {"vp_1": {"dist": "uniform", "low": 1e-5, "high": 2.5e9},
+                       "depth_1": {"dist": "truncated_normal", "mean": 0.0, "sd": 1.0, "low": -float("inf"),
+                                   "high": 3.0}},
+             "model": {"gradient_layers": [1, 2], "odd key": [[1.5], []]}}
+    assert tomllib.loads(report.toml_text(table)) == table
+
+
+def test_clear_errors_naming_the_file(run_dir, tmp_path):
+    with pytest.raises(FileNotFoundError, match="posterior.nc"):
+        report.write_report(tmp_path)
+    # a copy of the run folder where the recorded data files cannot be found
+    copy = tmp_path / "moved"
+    copy.mkdir()
+    for name in ("posterior.nc", "convergence.json", "config.toml", "config_resolved.json"):
+        shutil.copy(run_dir / name, copy / name)
+    resolved = json.loads((copy / "config_resolved.json").read_text())
+    resolved["path"] = "nowhere/run.toml"
+    resolved["picks"] = "nowhere/picks.csv"
+    (copy / "config_resolved.json").write_text(json.dumps(resolved))
+    with pytest.raises(FileNotFoundError, match=r"config_resolved\.json.*nowhere/picks\.csv"):
+        report.write_report(copy)
+
+
+def test_bad_arguments():
+    with pytest.raises(ValueError, match="site_classes"):
+        report.write_report(".", site_classes="nonsense")
+    with pytest.raises(ValueError, match="bedrock_velocity"):
+        report.write_report(".", bedrock_velocity=-1.0)
+
+
+# ------------------------------------------------------------------ BROWSER TEST
+CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                  "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                  "--hide-scrollbars"]
+
+
+def _chromium() -> str:
+    """Path of Chromium; installs it once with apt-get where possible, else skips the test."""
+    for name in ("/usr/bin/chromium", "chromium", "chromium-browser"):
+        found = shutil.which(name)
+        if found:
+            return found
+    if hasattr(os, "geteuid") and os.geteuid() == 0 and shutil.which("apt-get"):
+        env = {**os.environ, "DEBIAN_FRONTEND": "noninteractive"}
+        try:
+            subprocess.run(["apt-get", "update", "-qq"], env=env, timeout=300, capture_output=True)
+            subprocess.run(["apt-get", "install", "-y", "-qq", "chromium"], env=env, timeout=600,
+                           capture_output=True)
+        except (subprocess.TimeoutExpired, OSError):
+            pass
+        found = shutil.which("chromium")
+        if found:
+            return found
+    pytest.skip("browser test skipped: Chromium is not installed and 'apt-get install chromium' was not possible "
+                "here (needs root and the Debian package archive)")
+
+
+def test_report_renders_in_a_real_headless_browser(run_dir, tmp_path):
+    """BROWSER TEST: Chromium loads report.html from disk, decodes every image and draws a non-blank page."""
+    from PIL import Image
+
+    browser = _chromium()
+    profile = tmp_path / "profile"
+    # a copy of the page with a probe that records what the browser decoded
+    probe = ("<script>window.addEventListener('load',function(){document.body.setAttribute('data-widths',"
+             "Array.from(document.images).map(function(i){return i.complete?i.naturalWidth:0}).join(','));});"
+             "</script></body>")
+    probed = tmp_path / "probed.html"
+    probed.write_text((run_dir / "report.html").read_text(encoding="utf-8").replace("</body>", probe),
+                      encoding="utf-8")
+    dom = subprocess.run([browser, *CHROMIUM_FLAGS, f"--user-data-dir={profile}",
+                          "--run-all-compositor-stages-before-draw", "--virtual-time-budget=10000",
+                          "--dump-dom", probed.as_uri()], capture_output=True, text=True, timeout=180)
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    assert "<h1>Test site: short synthetic line</h1>" in dom.stdout
+    for anchor, _ in report.SECTIONS:
+        assert f'id="{anchor}"' in dom.stdout
+    widths = re.search(r'data-widths="([^"]*)"', dom.stdout)
+    assert widths, "the page's load event did not run"
+    values = [int(w) for w in widths.group(1).split(",")]
+    assert len(values) == len(report.FIGURES) and min(values) >= 400, values
+    # screenshot of the report itself: not blank
+    shot = tmp_path / "shot.png"
+    res = subprocess.run([browser, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "--window-size=1200,2400",
+                          f"--screenshot={shot}", (run_dir / "report.html").as_uri()],
+                         capture_output=True, text=True, timeout=180)
+    assert res.returncode == 0 and shot.exists(), res.stderr[-2000:]
+    pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert pixels.shape == (2400, 1200)
+    assert pixels.std() > 10.0  # text, tables and figures, not a uniform page
+    assert len(np.unique(pixels)) > 50
