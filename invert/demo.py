@@ -60,7 +60,7 @@ increasing_velocity = true
 [sampler]
 walkers = 24
 ensembles = 3
-steps = 4000
+steps = 6000
 burn = 1000
 seed = 11
 

@@ -352,7 +352,7 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
         dynesty's proposal and bounding methods (``'auto'`` picks uniform
         sampling in the bounds below 10 dimensions, random walks above).
     queue_size : int, optional
-        Proposals evaluated together (default ``max(8, live_points // 8)``).
+        Proposals evaluated together (default ``max(8, live_points // 4)``).
     seed : int
         Seed of dynesty's random generator; same seed, same result.
     max_calls : int, optional
@@ -385,25 +385,26 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
     if live_points < 2 * ndim + 2:
         raise ValueError(f"live_points = {live_points} is too few for {ndim} parameters "
                          f"(use at least {2 * ndim + 2}; a few hundred for a stated error of a few tenths)")
-    queue = int(queue_size) if queue_size else max(8, live_points // 8)
+    queue = int(queue_size) if queue_size else max(8, live_points // 4)
     loglike = _Counted(log_likelihood, "log_likelihood")
     ptform = _Counted(prior_transform, "prior_transform")
 
-    def batched_logl(theta):
-        return _check_loglike(loglike(theta), theta.shape[0])
-
-    def batched_ptform(u):
+    def transform(u):
         out = ptform(u)
         if out.shape != u.shape:
             raise ValueError(f"prior_transform must return shape {u.shape}, got {out.shape}")
         return out
 
-    pool = BatchingPool({"logl": batched_logl, "ptform": batched_ptform}, size=queue)
+    def cube_loglike(u):
+        # dynesty works in the unit cube; the prior transform runs inside the same batched call
+        return _check_loglike(loglike(transform(u)), u.shape[0])
+
+    pool = BatchingPool({"logl": cube_loglike}, size=queue)
     rng = np.random.default_rng(seed)
     t0 = time.perf_counter()
-    sampler = dynesty.NestedSampler(pool.per_point("logl"), pool.per_point("ptform"), ndim, nlive=int(live_points),
+    sampler = dynesty.NestedSampler(pool.per_point("logl"), _identity, ndim, nlive=int(live_points),
                                     bound=bound, sample=sample, rstate=rng, pool=pool, queue_size=queue,
-                                    use_pool={"update_bound": False})
+                                    use_pool={"update_bound": False, "prior_transform": False})
     bar = _progress(progress, f"nested sampling{' ' + label if label else ''}", unit=" it")
 
     def show(results, niter, ncall, add_live_it=None, dlogz=None, **_):
@@ -432,7 +433,7 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
     ess = float(1.0 / np.sum(weights ** 2))
     draws_rng = np.random.default_rng([seed, 1])
     index = _systematic_resample(weights, draws_rng)
-    samples = np.asarray(res["samples"])[index]
+    samples = transform(np.asarray(res["samples"])[index])
     ll = np.asarray(res["logl"])[index]
     notes = []
     iterations = int(res["niter"])
@@ -447,6 +448,10 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
                "posterior_ess": ess, "seed": int(seed),
                "error_formula": "sqrt(H / live points) accumulated by dynesty (Skilling 2006)"}
     return EvidenceResult("nested sampling", log_z, log_z_error, loglike.rows, seconds, samples, ll, details, notes)
+
+
+def _identity(u):
+    return np.array(u, dtype=float)
 
 
 def _systematic_resample(weights: np.ndarray, rng: np.random.Generator) -> np.ndarray:

@@ -37,7 +37,7 @@ Derivations and sources: ``docs/likelihood.md``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import linalg, sparse, special
@@ -272,11 +272,9 @@ def _make_noise(noise: str, n_walkers: int, n_picks: int, fraction=None, outlier
     needs = {"gaussian": (), "mixture": ("fraction", "outlier_sigma"), "student_t": ("dof",)}
     if noise not in needs:
         raise ValueError(f"noise: expected one of {sorted(needs)}, got {noise!r}")
-    for key, val in given.items():
-        if key in needs[noise] and val is None:
+    for key in needs[noise]:
+        if given[key] is None:
             raise ValueError(f"noise {noise!r} needs {key}")
-        if key not in needs[noise] and val is not None:
-            raise ValueError(f"noise {noise!r} takes no {key}")
     if noise == "gaussian":
         return _Noise("gaussian")
     if noise == "mixture":
@@ -723,7 +721,7 @@ def marginal_origin_quadrature(pred, obs, sigma, event, prior: OriginPrior, nois
 
     Accuracy (measured against ``scipy.integrate.quad`` in
     tests/test_likelihood.py): absolute error of the log likelihood about
-    1e-9 per event with the default 80 nodes (2e-7 with 64) when the
+    1e-9 per event with the default 80 nodes (5e-8 with 64) when the
     integrand has one mode -- models that fit, including single-pick events
     whose integrand is mostly the broad outlier shoulder; up to about 3e-8
     when a mispick of an event adds a small secondary peak. When the picks
@@ -738,7 +736,8 @@ def marginal_origin_quadrature(pred, obs, sigma, event, prior: OriginPrior, nois
         As in :func:`marginal_origin_gaussian`.
     noise : {"mixture", "student_t", "gaussian"}
         Noise model, with its parameters ``fraction`` and ``outlier_sigma``
-        (see :func:`outlier_mixture`) or ``dof`` (see :func:`student_t`).
+        (see :func:`outlier_mixture`) or ``dof`` (see :func:`student_t`);
+        the parameters of the other models are not used.
     n_nodes : int
         Quadrature nodes per event, >= 9 (cost is proportional).
     return_origin : bool
@@ -1000,9 +999,12 @@ class LinearGaussianPlan:
     others ("free", K of them) are ordered with the largest group first: that
     group's block of A^T D^-1 A is diagonal (a pick has at most one offset per
     group), which the shared-scale path eliminates exactly (Schur complement).
-    With ``per_walker_scale`` the plan also holds the eigen-decomposition
-    S^1/2 A^T D^-1 A S^1/2 = U diag(lam) U^T and V = S^1/2 U. Build with
-    :func:`prepare_linear_gaussian`; formulas in docs/likelihood.md.
+    For a noise scale that differs between models the plan also needs the
+    eigen-decomposition S^1/2 A^T D^-1 A S^1/2 = U diag(lam) U^T and
+    V = S^1/2 U: computed by :func:`prepare_linear_gaussian` with
+    ``per_walker_scale=True``, or else on first need, and kept (memoised) in
+    the plan. Build with :func:`prepare_linear_gaussian`; formulas in
+    docs/likelihood.md.
     """
 
     n_picks: int
@@ -1018,8 +1020,23 @@ class LinearGaussianPlan:
     free: np.ndarray             # (K,) positions of the free offsets among all offsets
     prior_mean: np.ndarray       # (K_all,) prior means of all offsets [s]
     columns: dict                # group name -> slice into all K_all offsets
-    eigvals: np.ndarray | None = None  # (K,) lam >= 0, only with per_walker_scale
-    vectors: np.ndarray | None = None  # (K, K) V [s], only with per_walker_scale
+    gram: sparse.csr_matrix      # (K, K) A^T D^-1 A of the free offsets [1/s^2]
+    max_offsets: int             # largest K for the eigen-decomposition
+    _eigen: dict = field(default_factory=dict, init=False, repr=False, compare=False)  # memo: lam, V
+
+    def eigen(self) -> tuple[np.ndarray, np.ndarray]:
+        """(lam (K,), V (K, K)) of the per-walker-scale path; computed once, O(K^3)."""
+        if not self._eigen:
+            n_off = self.prior_var.shape[0]
+            if n_off > self.max_offsets:
+                raise ValueError(f"a noise scale that differs between models needs a dense {n_off} x {n_off} "
+                                 f"eigen-decomposition, above max_offsets = {self.max_offsets}; use one scale "
+                                 "for all models, or origin times alone with marginal_origin_gaussian")
+            sd_free = np.sqrt(self.prior_var)
+            lam, vecs = linalg.eigh(sd_free[:, None] * self.gram.toarray() * sd_free[None, :])
+            self._eigen["lam"] = np.maximum(lam, 0.0)   # positive semi-definite: clip rounding below 0
+            self._eigen["V"] = sd_free[:, None] * vecs
+        return self._eigen["lam"], self._eigen["V"]
 
 
 def prepare_linear_gaussian(sigma, groups, per_walker_scale: bool = False,
@@ -1033,13 +1050,14 @@ def prepare_linear_gaussian(sigma, groups, per_walker_scale: bool = False,
     groups : sequence of OffsetGroup
         E.g. ``[OffsetGroup.origin_times(event, prior), OffsetGroup("receiver delay", rec, 0.0, 0.05)]``.
     per_walker_scale : bool
-        Also prepare for a noise scale that differs between models: an
+        Prepare now for a noise scale that differs between models: an
         eigen-decomposition of a K x K matrix, O(K^3) time and K^2 memory once
-        (K = number of free offsets, origin times included).
+        (K = number of free offsets, origin times included). Without it the
+        decomposition is made at the first call that needs it.
     max_offsets : int
         Refuse more free offsets than this outside the largest group (their
-        dense Schur complement is factorised per call, O(K_u^3)), and, with
-        ``per_walker_scale``, more free offsets in total.
+        dense Schur complement is factorised per call, O(K_u^3)), and more
+        free offsets in total for the eigen-decomposition.
 
     Returns
     -------
@@ -1082,24 +1100,16 @@ def prepare_linear_gaussian(sigma, groups, per_walker_scale: bool = False,
     weight = 1.0 / sigma ** 2
     gram = (design.T @ sparse.diags(weight) @ design).tocsr()      # A^T D^-1 A, sparse
     prior_var = prior_sd[free] ** 2
-    eigvals = vectors = None
-    if per_walker_scale:
-        if free.size > max_offsets:
-            raise ValueError(f"groups: {free.size} free offsets exceed max_offsets = {max_offsets} "
-                             "(a dense K x K eigen-decomposition); use a shared noise scale, or origin "
-                             "times alone with marginal_origin_gaussian")
-        sd_free = np.sqrt(prior_var)
-        h = sd_free[:, None] * gram.toarray() * sd_free[None, :]
-        eigvals, vecs = linalg.eigh(h)
-        eigvals = np.maximum(eigvals, 0.0)   # positive semi-definite: clip rounding below 0
-        vectors = sd_free[:, None] * vecs
-    return LinearGaussianPlan(
+    plan = LinearGaussianPlan(
         n_picks=n_picks, shift=shift, weight=weight, log_det_noise=float(np.sum(np.log(sigma ** 2))),
         group_sums=tuple(_GroupSum.build(groups[k]) for k in order), n_diag=n_diag,
         diag_gram=gram.diagonal()[:n_diag].copy(),
         coupling=gram[:n_diag, n_diag:].tocsr(), rest_gram=gram[n_diag:, n_diag:].toarray(),
-        prior_var=prior_var, free=free, prior_mean=prior_mean, columns=columns,
-        eigvals=eigvals, vectors=vectors)
+        prior_var=prior_var, free=free, prior_mean=prior_mean, columns=columns, gram=gram,
+        max_offsets=int(max_offsets))
+    if per_walker_scale:
+        plan.eigen()
+    return plan
 
 
 def _shared_scale_terms(g, s_sq, plan, want_posterior):
@@ -1153,8 +1163,7 @@ def linear_gaussian_marginal(resid, plan: LinearGaussianPlan, scale=None, return
         ``obs - pred`` [s] (observed arrival minus predicted travel time);
         ``-inf`` for absent arrivals.
     plan : LinearGaussianPlan
-        From :func:`prepare_linear_gaussian` (with ``per_walker_scale=True``
-        if ``scale`` differs between models).
+        From :func:`prepare_linear_gaussian`.
     scale : float or (B,) array, optional
         Noise scale factor per model (default 1).
     return_posterior : bool
@@ -1185,8 +1194,6 @@ def linear_gaussian_marginal(resid, plan: LinearGaussianPlan, scale=None, return
     n_walkers = arr.shape[0]
     s_sq = _noise_scale(scale, n_walkers)[:, 0] ** 2        # (B,)
     shared = bool(np.all(s_sq == s_sq[0]))
-    if not shared and plan.vectors is None:
-        raise ValueError("scale differs between models: prepare the plan with per_walker_scale=True")
     n_off = plan.prior_var.shape[0]
     bad = np.zeros(n_walkers, dtype=bool)
     quad = np.empty(n_walkers)                             # r^T D^-1 r
@@ -1208,15 +1215,15 @@ def linear_gaussian_marginal(resid, plan: LinearGaussianPlan, scale=None, return
         log_det_c = plan.n_picks * np.log(s_sq) + plan.log_det_noise + log_det_extra
         fit = quad / s_sq - quad_b
     else:
-        lam = plan.eigvals
-        z = g @ plan.vectors                                # (B, K)
+        lam, vectors = plan.eigen()
+        z = g @ vectors                                     # (B, K)
         denom = s_sq[:, None] + lam
         fit = (quad - np.sum(z * z / denom, axis=1)) / s_sq
         log_det_c = (plan.n_picks * np.log(s_sq) + plan.log_det_noise
                      + np.sum(np.log1p(lam / s_sq[:, None]), axis=1))
         if return_posterior:
-            theta = (z / denom) @ plan.vectors.T
-            var = (s_sq[:, None] / denom) @ (plan.vectors.T ** 2)
+            theta = (z / denom) @ vectors.T
+            var = (s_sq[:, None] / denom) @ (vectors.T ** 2)
     loglike = -0.5 * (plan.n_picks * LOG_2PI + log_det_c + fit)
     loglike[bad] = -np.inf
     if not return_posterior:

@@ -53,6 +53,7 @@ ensembles = 1
 steps = 40
 burn = 10
 seed = 5
+start = "prior"
 [output]
 folder = "run"
 """

@@ -85,8 +85,30 @@ def _same(a, b, rtol=1e-9, atol=0.0):
 
 
 # ------------------------------------------------------------------ monotonic
+@st.composite
+def increasing_models(draw):
+    """Velocity never falling with depth: gradients >= 0 and no drop at any interface."""
+    n = draw(st.integers(0, 3))
+    th = [draw(_finite_floats(0.2, 3.0)) for _ in range(n)]
+    vp, grad = [draw(_finite_floats(1.5, 5.0))], []
+    for j in range(n):
+        grad.append(draw(_gradient(0.0, 1.0)))
+        vp.append(vp[-1] + grad[-1] * th[j] + draw(_finite_floats(0.0, 2.0)))
+    grad.append(draw(_gradient(0.0, 0.05)))
+    return LayerModel.build(th, vp, vpvs=draw(_finite_floats(1.6, 2.5)), gradient=grad)
+
+
+# Ray theory's first arrival can jump DOWN where a caustic opens behind a velocity peak: e.g.
+# thickness (1, 0.25, 1), vp (2, 3, 3, 2), gradient (0, 1, 1, 0) km, km/s, 1/s, surface ends:
+# the reflection from interface 3 gives 2.6915 s at 5.825 km, then a pair of diving rays is born
+# at about 5.83 km at 2.672 s (found by this test; the reference ray tracer agrees). The least
+# time of all paths is continuous there (the gap is filled by a wave grazing the velocity peak,
+# which ray theory does not produce), so the property is stated where no velocity peak exists
+# (a profile that never falls with depth) or where every branch starts at its parent's critical
+# point (constant-velocity layers).
 @SETTINGS
-@given(model=models(falling_top=False), wave=st.sampled_from(["P", "S"]),
+@given(model=st.one_of(increasing_models(), models(falling_top=False, constant=True)),
+       wave=st.sampled_from(["P", "S"]),
        zr=st.one_of(st.just(0.0), _finite_floats(0.0, 4.0)), xmax=_finite_floats(1.0, 80.0))
 def test_first_arrival_non_decreasing_in_offset(run, model, wave, zr, xmax):
     x = np.linspace(0.0, xmax, 400)
