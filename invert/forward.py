@@ -474,11 +474,17 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
                 best_k = 0
                 best_deep = zmax
     # ---- diving rays turning inside gradient layers at or below zmax:
-    # branch and bound, the layer with the lowest lower bound on T first
-    if mode == 0 or mode == 1:
+    # branch and bound, the layer with the lowest lower bound on T first.
+    # A head-wave pick along a refractor whose velocity rises with depth is
+    # matched by the ray diving just beneath that interface (the kinematic head
+    # wave does not exist there).
+    dive_head = mode == 2 and 0 <= kwant < nl - 1 and grad[kwant + 1] > 0.0 and kwant >= lb
+    if mode == 0 or mode == 1 or dive_head:
         nc = 0
         for l in range(lb, nl):
             if grad[l] <= 0.0:
+                continue
+            if dive_head and l != kwant + 1:
                 continue
             idx = n_u + (l - lb)
             if not np.isfinite(va[idx]) or va[idx] <= 0.0:
@@ -525,7 +531,7 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
                 best_t = t
                 best_p = p
                 best_code = 2
-                best_k = 0
+                best_k = kwant + 1 if dive_head else 0
                 best_deep = (ztop[l] if l > lb else zmax) + (1.0 / p - va[idx]) / grad[l]
     # ---- reflections from interfaces below zmax
     if mode == 0 or mode == 3:
@@ -645,7 +651,7 @@ def _kernel_surface_constant(thick, vel, x):
         for j in range(npk):
             xj = x[j]
             best = xj / v0
-            bp = 1.0 / v0
+            bp = 1.0 / v0 if xj > 0.0 else 0.0
             bc = 1
             bk = 0
             bd = 0.0

@@ -104,6 +104,9 @@ PHASES = {"P": ("P", "direct"), "S": ("S", "direct"), "Pdiff": ("P", "diffracted
 N_SCAN = 24
 
 _NS = N_SCAN + 2
+
+#: Velocity laws inside a shell.
+LAWS = ("flat", "r2")
 _N_FAMILIES = 5  # turning-ray families: above core, outer core, inner core, S->outer core, S->inner core
 
 _jit = numba.njit(cache=True, error_model="numpy", fastmath=False)
@@ -142,6 +145,14 @@ class RadialModel:
         centre, whose bottom value is the velocity at the centre).
     names : tuple of str
         Shell names, shared by the batch.
+    law : tuple of str
+        Velocity law inside each shell, shared by the batch: ``'r2'``
+        (``1 / v^2`` linear in ``r^2``; exact for uniform shells at any
+        radius; required for a shell reaching the centre) or ``'flat'``
+        (``v / r`` linear in ``ln r``: exactly a linear layer in the
+        flattened coordinates, the flat engine's layer; a uniform shell sags
+        between its ends by about ``v ln(r_top / r_bottom)^2 / 8``, which is
+        small in crust and mantle and large near the centre).
     """
 
     radius: np.ndarray
@@ -152,10 +163,12 @@ class RadialModel:
     vs_top: np.ndarray
     vs_bottom: np.ndarray
     names: tuple
+    law: tuple
 
     # ------------------------------------------------------------------ constructors
     @classmethod
-    def build(cls, r_top, r_bottom, vp_top, vp_bottom, vs_top, vs_bottom, names=None) -> "RadialModel":
+    def build(cls, r_top, r_bottom, vp_top, vp_bottom, vs_top, vs_bottom, names=None,
+              law=None) -> "RadialModel":
         """Validate and broadcast a (batch of) radial model(s) given by radii.
 
         Parameters
@@ -168,6 +181,9 @@ class RadialModel:
             both ends marks a liquid shell.
         names : sequence of str, optional
             One name per shell (default ``shell 1``, ``shell 2``, ...).
+        law : sequence of {'flat', 'r2'}, optional
+            Velocity law of every shell (default 'r2' for all; a shell
+            reaching the centre must use 'r2').
 
         Raises
         ------
@@ -175,8 +191,9 @@ class RadialModel:
             Naming the field and the shell for non-finite values, shells that
             are not contiguous or have no thickness, velocities <= 0 (P) or
             < 0 (S), half-liquid shells, Vp/Vs not above sqrt(4/3) in solids,
-            or a centre shell whose velocity at its top is sqrt(2) times or
-            more its velocity at the centre (rays would not turn in it).
+            or an 'r2' shell in which r / v is not monotone (for the centre
+            shell: a velocity at its top sqrt(2) times its centre value or
+            more).
         """
         arrays = {"r_top": r_top, "r_bottom": r_bottom, "vp_top": vp_top, "vp_bottom": vp_bottom,
                   "vs_top": vs_top, "vs_bottom": vs_bottom}
@@ -195,6 +212,14 @@ class RadialModel:
         names = tuple(str(n) for n in names)
         if len(names) != n_shells:
             raise ValueError(f"names: expected {n_shells} shell names, got {len(names)}")
+        if law is None:
+            law = ("r2",) * n_shells
+        law = tuple(str(v) for v in law)
+        if len(law) != n_shells:
+            raise ValueError(f"law: expected {n_shells} values, got {len(law)}")
+        for j, v in enumerate(law):
+            if v not in LAWS:
+                raise ValueError(f"law: shell {j + 1} ({names[j]}) has law {v!r}; expected one of {', '.join(LAWS)}")
         # contiguity: bottom of shell k is the top of shell k+1 (tiny rounding is snapped)
         rt, rb = out["r_top"], out["r_bottom"]
         for k, a in out.items():
@@ -213,13 +238,13 @@ class RadialModel:
                                  + _suffix(m, n_models))
             rt[:, 1:] = rb[:, :-1]
         model = cls(rt[:, 0].copy(), rt, rb, out["vp_top"], out["vp_bottom"], out["vs_top"],
-                    out["vs_bottom"], names)
+                    out["vs_bottom"], names, law)
         model._validate()
         return model
 
     @classmethod
     def from_depths(cls, top_depth, bottom_depth, vp_top, vp_bottom, vs_top, vs_bottom, *, radius,
-                    names=None) -> "RadialModel":
+                    names=None, law=None) -> "RadialModel":
         """Same as :meth:`build` with depths below the surface [km] and the radius R [km]."""
         radius = np.asarray(radius, dtype=float)
         if radius.ndim > 1 or not np.all(np.isfinite(radius)) or np.any(radius <= 0):
@@ -234,7 +259,8 @@ class RadialModel:
             m, j = np.argwhere(bad)[0]
             raise ValueError(f"bottom_depth: shell {j + 1} ends at depth {bot[m, j]:g} km, below the centre "
                              f"(radius {np.broadcast_to(r, bot.shape)[m, j]:g} km)")
-        return cls.build(r - top, np.maximum(r - bot, 0.0), vp_top, vp_bottom, vs_top, vs_bottom, names=names)
+        return cls.build(r - top, np.maximum(r - bot, 0.0), vp_top, vp_bottom, vs_top, vs_bottom, names=names,
+                         law=law)
 
     @classmethod
     def from_layers(cls, layers: LayerModel, radius: float, *, below: "RadialModel | None" = None,
@@ -311,7 +337,11 @@ class RadialModel:
             vp_top, vp_bot = add(vp_top, below.vp_top), add(vp_bot, below.vp_bottom)
             vs_top, vs_bot = add(vs_top, below.vs_top), add(vs_bot, below.vs_bottom)
             lnames += list(below.names[start + 1:])
-        return cls.from_depths(top_d, bot_d, vp_top, vp_bot, vs_top, vs_bot, radius=radius, names=lnames)
+            laws = ["flat"] * n + list(below.law[start + 1:])
+        else:
+            laws = ["flat"] * (n - 1) + ["r2"]
+        return cls.from_depths(top_d, bot_d, vp_top, vp_bot, vs_top, vs_bot, radius=radius, names=lnames,
+                               law=laws)
 
     # ------------------------------------------------------------------ checks
     def _validate(self) -> None:
@@ -355,15 +385,20 @@ class RadialModel:
                 m, j = np.argwhere(bad)[0]
                 raise ValueError(f"vs_{where}: shell {j + 1} ({names[j]}) has Vp/Vs <= sqrt(4/3) at its {where} "
                                  "(negative bulk modulus)" + _suffix(m, n_models))
-        centre = self.r_bottom[:, -1] == 0
+        if np.any(self.r_bottom[:, -1] == 0) and self.law[-1] != "r2":
+            j = self.n_shells - 1
+            raise ValueError(f"law: the centre shell {j + 1} ({names[j]}) must use the 'r2' law")
+        r2 = np.array([v == "r2" for v in self.law])[None, :]
         for name, top, bot in (("vp", self.vp_top, self.vp_bottom), ("vs", self.vs_top, self.vs_bottom)):
-            bad = centre & (bot[:, -1] > 0) & ~(top[:, -1] < math.sqrt(2.0) * bot[:, -1])
+            ok = r2 & (bot > 0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                st, sb = _r2_slopes(self.r_top, self.r_bottom, np.where(ok, top, 1.0), np.where(ok, bot, 1.0))
+            bad = ok & ~(((st > 0) & (sb > 0)) | ((st < 0) & (sb < 0)))
             if bad.any():
-                m = int(np.argwhere(bad)[0, 0])
-                j = self.n_shells - 1
-                raise ValueError(f"{name}_top: the centre shell {j + 1} ({names[j]}) is {top[m, j]:g} km/s at its "
-                                 f"top, sqrt(2) times its centre value {bot[m, j]:g} km/s or more: r / v would "
-                                 "not fall toward the centre" + _suffix(m, n_models))
+                m, j = np.argwhere(bad)[0]
+                raise ValueError(f"{name}_top: in the 'r2' shell {j + 1} ({names[j]}) r / v is not monotone "
+                                 f"({top[m, j]:g} km/s at its top, {bot[m, j]:g} km/s at its bottom); split the "
+                                 "shell or use the 'flat' law" + _suffix(m, n_models))
 
     # ------------------------------------------------------------------ queries
     @property
@@ -422,16 +457,15 @@ class RadialModel:
         rt, rb = self.r_top[rows, idx], self.r_bottom[rows, idx]
         vt, vb = top[rows, idx], bot[rows, idx]
         out = np.empty(r.shape)
-        centre = rb == 0
+        r2 = np.array([v == "r2" for v in self.law])[idx]
         with np.errstate(divide="ignore", invalid="ignore"):
             zt = vt / rt
-            zb = vb / np.where(centre, 1.0, rb)
-            frac = np.log(rt / r) / np.log(rt / np.where(centre, 1.0, rb))
+            zb = vb / np.where(r2, 1.0, rb)
+            frac = np.log(rt / r) / np.log(rt / np.where(r2, 1.0, rb))
             lin = r * (zt + (zb - zt) * frac)
-            a = np.where(vb > 0, 1.0 / vb ** 2, np.inf)
-            b = (np.where(vt > 0, 1.0 / vt ** 2, np.inf) - a) / rt ** 2
-            cen = np.where(vt > 0, 1.0 / np.sqrt(a + b * r ** 2), 0.0)
-        out[:] = np.where(centre, cen, lin)
+            a, b = _r2_coefficients(rt, rb, vt, vb)
+            cen = 1.0 / np.sqrt(a + b * r ** 2)
+        out[:] = np.where(r2, cen, lin)
         out[(vt == 0) & (vb == 0)] = 0.0
         return out
 
@@ -439,7 +473,21 @@ class RadialModel:
         """Models selected by ``index`` along the batch axis (kept 2-D)."""
         idx = np.atleast_1d(np.arange(self.n_models)[index])
         return RadialModel(self.radius[idx], self.r_top[idx], self.r_bottom[idx], self.vp_top[idx],
-                           self.vp_bottom[idx], self.vs_top[idx], self.vs_bottom[idx], self.names)
+                           self.vp_bottom[idx], self.vs_top[idx], self.vs_bottom[idx], self.names, self.law)
+
+
+def _r2_coefficients(rt, rb, vt, vb):
+    """A, B of the 'r2' law 1 / v^2 = A + B r^2 through (rt, vt) and (rb, vb) (arrays)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        b = (1.0 / vt ** 2 - 1.0 / vb ** 2) / ((rt - rb) * (rt + rb))
+        a = 1.0 / vb ** 2 - b * rb ** 2
+    return a, b
+
+
+def _r2_slopes(rt, rb, vt, vb):
+    """d(r^2 / v^2) / d(r^2) = A + 2 B r^2 at the top and bottom of an 'r2' shell."""
+    a, b = _r2_coefficients(rt, rb, vt, vb)
+    return a + 2.0 * b * rt ** 2, a + 2.0 * b * rb ** 2
 
 
 def _suffix(m: int, n_models: int) -> str:
@@ -478,9 +526,11 @@ def read_radial_csv(path, radius: float | None = None) -> RadialModel:
 
         shell, top_depth_km, bottom_depth_km, vp_top_km_s, vp_bottom_km_s, vs_top_km_s, vs_bottom_km_s
 
-    or ``top_radius_km, bottom_radius_km`` instead of the depth columns.
-    ``vs = 0`` at both ends marks a liquid shell. Velocities at the bottom of
-    a shell reaching the centre are the values at the centre.
+    or ``top_radius_km, bottom_radius_km`` instead of the depth columns, and
+    optionally ``law`` (``r2`` or ``flat``, see :class:`RadialModel`; empty
+    or missing: ``r2``). ``vs = 0`` at both ends marks a liquid shell.
+    Velocities at the bottom of a shell reaching the centre are the values at
+    the centre.
 
     Parameters
     ----------
@@ -523,7 +573,7 @@ def read_radial_csv(path, radius: float | None = None) -> RadialModel:
     for col in required:
         if col not in header:
             raise DataError(path, hdr_line, col, f"missing column (required: {', '.join(required)})")
-    extra = [h for h in header if h not in required]
+    extra = [h for h in header if h not in required + ("law",)]
     if extra:
         raise DataError(path, hdr_line, extra[0], f"unknown column (expected: {', '.join(required)})")
     if len(set(header)) != len(header):
@@ -545,14 +595,17 @@ def read_radial_csv(path, radius: float | None = None) -> RadialModel:
             vals[col] = v
         if not row["shell"]:
             raise DataError(path, lineno, "shell", "empty shell name")
-        rows.append((lineno, row["shell"], vals))
+        law = row.get("law", "")
+        if law and law not in LAWS:
+            raise DataError(path, lineno, "law", f"unknown law {law!r} (expected {' or '.join(LAWS)})")
+        rows.append((lineno, row["shell"], vals, law))
     if not rows:
         raise DataError(path, None, None, "no shells")
-    for (l0, n0, v0), (l1, n1, v1) in zip(rows[:-1], rows[1:]):
+    for (l0, n0, v0, _), (l1, n1, v1, _) in zip(rows[:-1], rows[1:]):
         if v0[geo[1]] != v1[geo[0]]:
             raise DataError(path, l1, geo[0], f"shell {n1!r} starts at {v1[geo[0]]:g} km but the shell above "
                                               f"({n0!r}, line {l0}) ends at {v0[geo[1]]:g} km")
-    for lineno, name, v in rows:
+    for lineno, name, v, _ in rows:
         thick = v[geo[1]] - v[geo[0]] if geo is _CSV_DEPTH else v[geo[0]] - v[geo[1]]
         if not thick > 0:
             raise DataError(path, lineno, geo[1], f"shell {name!r} has no thickness")
@@ -578,9 +631,10 @@ def read_radial_csv(path, radius: float | None = None) -> RadialModel:
             raise DataError(path, rows[0][0], "top_radius_km", f"differs from the given radius {radius:g} km")
         if rb[-1] < 0:
             raise DataError(path, rows[-1][0], "bottom_radius_km", "negative radius")
+    laws = [r[3] or "r2" for r in rows]
     try:
         return RadialModel.build(rt, rb, col["vp_top_km_s"], col["vp_bottom_km_s"], col["vs_top_km_s"],
-                                 col["vs_bottom_km_s"], names=names)
+                                 col["vs_bottom_km_s"], names=names, law=laws)
     except ValueError as exc:
         msg = str(exc)
         line = None
@@ -605,11 +659,11 @@ def write_radial_csv(model: RadialModel, path, *, index: int = 0, columns: str =
     with open(path, "w", encoding="utf-8", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         fh.write(f"# radial model, radius {model.radius[m]:.17g} km; velocities in km/s\n")
-        w.writerow(("shell",) + geo + _CSV_VEL)
+        w.writerow(("shell",) + geo + _CSV_VEL + ("law",))
         for j in range(model.n_shells):
             vals = (a[0][j], a[1][j], model.vp_top[m, j], model.vp_bottom[m, j], model.vs_top[m, j],
                     model.vs_bottom[m, j])
-            w.writerow([model.names[j]] + [f"{v:.17g}" for v in vals])
+            w.writerow([model.names[j]] + [f"{v:.17g}" for v in vals] + [model.law[j]])
 
 
 # ============================================================================ compiled core
@@ -829,12 +883,32 @@ def _zeta_at(i, r, rt, rb, zt, zb):
 
 
 @_jit
-def _fill(r1, r2, l1, l2, last, rt, rb, zt, zb, aa, bb,
+def _wzeta(w, a, b):
+    """zeta = v / r at w = r^2 in an 'r2' shell (1 / v^2 = a + b w); 0 where the wave cannot exist."""
+    if not np.isfinite(a):
+        return 0.0
+    if w <= 0.0:
+        return np.inf
+    return 1.0 / np.sqrt(w * (a + b * w))
+
+
+@_jit
+def _piece_ends(k, a, b, pa_, pb_):
+    """zeta at the top and bottom of a piece."""
+    if k == 0:
+        return a, b
+    return _wzeta(a, pa_, pb_), _wzeta(b, pa_, pb_)
+
+
+@_jit
+def _fill(r1, r2, l1, l2, last, law, rt, rb, zt, zb, aa, bb,
           pk, pa, pb, ph, pw, pA, pB, prad, vmx):
     """Pieces from r1 down to r2 (weight 1), then from r2 to the base of shell ``last`` (weight 2).
 
-    r1 >= r2 are the ends' radii in shells l1 <= l2. Returns (n_u, n).
-    Running maximum of zeta in ``vmx`` (inf once a piece is blocked).
+    r1 >= r2 are the ends' radii in shells l1 <= l2. A 'flat' piece stores
+    zeta at its ends (kind 0), an 'r2' piece the squared radii of its ends
+    (kind 1; 0 at the centre). Returns (n_u, n). Running maximum of zeta in
+    ``vmx`` (inf once a piece is blocked).
     """
     n = 0
     if r1 > r2:
@@ -847,7 +921,7 @@ def _fill(r1, r2, l1, l2, last, rt, rb, zt, zb, aa, bb,
             pw[n] = 1.0
             pA[n] = aa[i]
             pB[n] = bb[i]
-            if rb[i] > 0.0:
+            if law[i] == 0:
                 pk[n] = 0
                 pa[n] = _zeta_at(i, a, rt, rb, zt, zb)
                 pb[n] = _zeta_at(i, b, rt, rb, zt, zb)
@@ -865,7 +939,7 @@ def _fill(r1, r2, l1, l2, last, rt, rb, zt, zb, aa, bb,
         pw[n] = 2.0
         pA[n] = aa[i]
         pB[n] = bb[i]
-        if rb[i] > 0.0:
+        if law[i] == 0:
             pk[n] = 0
             pa[n] = _zeta_at(i, a, rt, rb, zt, zb)
             pb[n] = zb[i] if zt[i] > 0.0 else 0.0
@@ -873,27 +947,23 @@ def _fill(r1, r2, l1, l2, last, rt, rb, zt, zb, aa, bb,
         else:
             pk[n] = 1
             pa[n] = a * a
-            pb[n] = 0.0
-            ph[n] = np.inf
+            pb[n] = rb[i] * rb[i]
+            ph[n] = np.log(a / rb[i]) if rb[i] > 0.0 else np.inf
         n += 1
     run = 0.0
     for i in range(n):
-        if pk[i] == 0:
-            if pa[i] <= 0.0 or pb[i] <= 0.0:
-                run = np.inf
-            run = max(run, pa[i], pb[i])
-        elif not np.isfinite(pA[i]):
-            run = np.inf  # S in a liquid centre
-        else:
-            run = max(run, 1.0 / np.sqrt(pa[i] * (pA[i] + pB[i] * pa[i])))
-            if i < n_u:
-                run = max(run, 1.0 / np.sqrt(pb[i] * (pA[i] + pB[i] * pb[i])))
+        za, zb_ = _piece_ends(pk[i], pa[i], pb[i], pA[i], pB[i])
+        if za <= 0.0 or zb_ <= 0.0:
+            run = np.inf  # S in a liquid shell
+        run = max(run, za)
+        if np.isfinite(zb_):  # the centre itself does not count
+            run = max(run, zb_)
         vmx[i] = run
     return n_u, n
 
 
 @_jit
-def _kernel(radius, rt, rb, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
+def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
             delta, rsrc, rrec, order, mode, kwant, wave_p):
     nm, ns = rt.shape
     npk = delta.shape[1]
@@ -995,11 +1065,11 @@ def _kernel(radius, rt, rb, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                 if not valid:
                     continue
                 last_all = ns - 1
-                n_u, n0 = _fill(r1, r2, l1, l2, last_all, rt[m], rb[m], wzt[m], wzb[m], wA[m], wB[m],
+                n_u, n0 = _fill(r1, r2, l1, l2, last_all, law, rt[m], rb[m], wzt[m], wzb[m], wA[m], wB[m],
                                 pk[0], pa[0], pb[0], ph[0], pw[0], pA[0], pB[0], prad[0], vmx[0])
                 n_list[0] = n0
                 if use[3] or use[4]:
-                    nu1, n1 = _fill(r1, r2, l1, l2, last_all, rt[m], rb[m], czt[m], czb[m], cA[m], cB[m],
+                    nu1, n1 = _fill(r1, r2, l1, l2, last_all, law, rt[m], rb[m], czt[m], czb[m], cA[m], cB[m],
                                     pk[1], pa[1], pb[1], ph[1], pw[1], pA[1], pB[1], prad[1], vmx[1])
                     n_list[1] = n1
                 # turning candidates
@@ -1025,21 +1095,16 @@ def _kernel(radius, rt, rb, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                         vabove = vmx[lst, idx - 1] if idx > 0 else 0.0
                         if not np.isfinite(vabove):
                             break
-                        if pk[lst, idx] == 0:
-                            if not (pb[lst, idx] > pa[lst, idx]) or pa[lst, idx] <= 0.0:
-                                continue
-                            vend = pb[lst, idx]
-                            if vabove >= vend:
-                                continue
-                            vref = max(pa[lst, idx], vabove)
+                        za, vend = _piece_ends(pk[lst, idx], pa[lst, idx], pb[lst, idx], pA[lst, idx],
+                                               pB[lst, idx])
+                        if not (vend > za) or za <= 0.0 or vabove >= vend:
+                            continue
+                        vref = max(za, vabove)
+                        if np.isfinite(vend):
                             rr_ = vref / vend
                             qtop = np.sqrt((1.0 - rr_) * (1.0 + rr_))
                         else:
-                            if not np.isfinite(pA[lst, idx]):
-                                continue
-                            za = 1.0 / np.sqrt(pa[lst, idx] * (pA[lst, idx] + pB[lst, idx] * pa[lst, idx]))
-                            vref = max(za, vabove)
-                            qtop = 1.0
+                            qtop = 1.0  # down to p = 0: through the centre
                         xs0, ts0, ds0 = _ray(0.0, vref, idx, pk[lst], pa[lst], pb[lst], ph[lst], pw[lst],
                                              pA[lst], pB[lst], idx)
                         tau0 = ts0 - xs0 / vref
@@ -1057,9 +1122,9 @@ def _kernel(radius, rt, rb, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                     for sh in range(l2, last_d):
                         idx = n_u + (sh - l2)
                         nxt = idx + 1
-                        if pk[0, nxt] != 0 or pb[0, nxt] > pa[0, nxt]:
+                        vh, vhb = _piece_ends(pk[0, nxt], pa[0, nxt], pb[0, nxt], pA[0, nxt], pB[0, nxt])
+                        if vhb > vh:
                             continue
-                        vh = pa[0, nxt]
                         if not (vh > vmx[0, idx]) or not np.isfinite(vmx[0, idx]):
                             continue
                         q2 = (1.0 - vmx[0, idx] / vh) * (1.0 + vmx[0, idx] / vh)
@@ -1073,8 +1138,8 @@ def _kernel(radius, rt, rb, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                 # diffracted along the core-mantle boundary
                 if (mode == 0 or mode == 3) and ncmb >= 1 and l2 <= ncmb - 1:
                     idx = n_u + (ncmb - 1 - l2)
-                    zg = pb[0, idx]
-                    if pk[0, idx] == 0 and zg > 0.0 and np.isfinite(vmx[0, idx]) and zg >= vmx[0, idx]:
+                    zg = _piece_ends(pk[0, idx], pa[0, idx], pb[0, idx], pA[0, idx], pB[0, idx])[1]
+                    if zg > 0.0 and np.isfinite(vmx[0, idx]) and zg >= vmx[0, idx]:
                         xc, tc, dc = _sum(1.0 / zg, zg, 0.0, idx + 1, pk[0], pa[0], pb[0], ph[0], pw[0],
                                           pA[0], pB[0])
                         if np.isfinite(xc) and np.isfinite(tc):
@@ -1304,13 +1369,16 @@ def _wave_arrays(model: RadialModel, wave: str):
     top, bot = model.velocity(wave)
     rt, rb = model.r_top, model.r_bottom
     centre = rb == 0
+    r2 = np.array([v == "r2" for v in model.law])[None, :] & np.ones(rt.shape, dtype=bool)
     with np.errstate(divide="ignore", invalid="ignore"):
         zt = top / rt
         zb = np.where(centre, np.inf, bot / np.where(centre, 1.0, rb))
-        a = np.where(centre & (bot > 0), 1.0 / np.where(bot > 0, bot, 1.0) ** 2, np.inf)
-        b = np.where(centre & (top > 0), (1.0 / np.where(top > 0, top, 1.0) ** 2 - a) / rt ** 2, 0.0)
-    b = np.where(np.isfinite(a), b, 0.0)
-    zb = np.where(top > 0, zb, 0.0)
+        a, b = _r2_coefficients(rt, rb, np.where(top > 0, top, 1.0), np.where(bot > 0, bot, 1.0))
+    liquid = ~(top > 0)
+    a = np.where(r2 & ~liquid, a, np.inf)
+    b = np.where(r2 & ~liquid, b, 0.0)
+    zb = np.where(liquid, 0.0, zb)
+    zt = np.where(liquid, 0.0, zt)
     return (np.ascontiguousarray(zt), np.ascontiguousarray(zb), np.ascontiguousarray(a),
             np.ascontiguousarray(b))
 
@@ -1399,8 +1467,9 @@ def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, rece
                             for pv, sv in ((pzt, wzt), (pzb, wzb), (pA, wA), (pB, wB)))
     else:
         czt, czb, cA, cB = wzt, wzb, wA, wB
+    law = np.array([LAWS.index(v) for v in model.law], dtype=np.int64)
     out = _kernel(np.ascontiguousarray(radius), np.ascontiguousarray(model.r_top),
-                  np.ascontiguousarray(model.r_bottom), wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
+                  np.ascontiguousarray(model.r_bottom), law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                   delta, rs, rr, order, mode, kwant, wave == "P")
     time, p, code, iface, deep = out
     return SphereArrivals(time, p, code, iface, deep, wave)

@@ -42,6 +42,11 @@ source,x,y,depth,origin_time
 e1,0,0,,
 e2,10,5,,
 """
+NET_SOURCES_NO_EPICENTRE = """\
+source,x,y,depth,origin_time
+e1,0,0,,
+e2,,,,
+"""
 NET_RECEIVERS = """\
 receiver,x,y,depth
 s1,5,0,0
@@ -134,6 +139,7 @@ def changed(doc: dict, changes: dict) -> dict:
 def folder(tmp_path):
     for name, text in (("line_picks.csv", LINE_PICKS), ("net_picks.csv", NET_PICKS),
                        ("net_sources.csv", NET_SOURCES), ("net_receivers.csv", NET_RECEIVERS),
+                       ("net_sources_no_epicentre.csv", NET_SOURCES_NO_EPICENTRE),
                        ("template_km.toml", TEMPLATE_KM)):
         (tmp_path / name).write_text(text)
     return tmp_path
@@ -182,6 +188,7 @@ CASES = [
     ("layers-negative", {"model.layers": -1}, "model", ["layers = -1", "integer >= 0"]),
     ("depth-parameter-string", {"model.depth_parameter": "yes"}, "model", ["depth_parameter = 'yes'", "true"]),
     ("gradient-layers-floats", {"model.gradient_layers": [1.5]}, "model", ["gradient_layers", "list of layer numbers"]),
+    ("fluid-layers-not-a-list", {"model.fluid_layers": 2}, "model", ["fluid_layers = 2", "list of layer numbers"]),
     ("title-number", {"title": 5}, "", ["title = 5", "expected str"]),
     ("until-converged-string", {"sampler.until_converged": "yes"}, "sampler", ["until_converged", "true or false"]),
     ("folder-number", {"output.folder": 3}, "output", ["folder = 3", "a folder path"]),
@@ -193,6 +200,9 @@ CASES = [
     ("burn-above-steps", {"sampler.burn": 500}, "sampler", ["burn = 500", "smaller than steps = 200"]),
     ("burn-negative", {"sampler.burn": -1}, "sampler", ["burn = -1", "integer >= 0"]),
     ("thin-zero", {"sampler.thin": 0}, "sampler", ["thin = 0", "integer >= 1"]),
+    ("ensembles-zero", {"sampler.ensembles": 0}, "sampler", ["ensembles = 0", "integer >= 1"]),
+    ("max-steps-zero", {"sampler.max_steps": 0}, "sampler", ["max_steps = 0", "integer >= 1"]),
+    ("checkpoint-every-zero", {"sampler.checkpoint_every": 0}, "sampler", ["checkpoint_every = 0", "integer >= 1"]),
     ("seed-negative", {"sampler.seed": -3}, "sampler", ["seed = -3", "integer >= 0"]),
     ("start-unknown", {"sampler.start": "random"}, "sampler", ["start = 'random'", "'optimum'", "'prior'"]),
     ("vpvs-mode-unknown", {"model.vpvs_mode": "ratio"}, "model",
@@ -202,10 +212,14 @@ CASES = [
     ("outlier-fraction-above-one", {"noise.outlier_fraction": 1.5}, "noise",
      ["outlier_fraction = 1.5", "between 0 and 1"]),
     ("dof-negative", {"noise.dof": -1.0}, "noise", ["dof = -1.0", "degrees of freedom > 0"]),
+    ("outlier-sigma-zero", {"noise.outlier_sigma": 0.0}, "noise", ["outlier_sigma = 0.0", "positive width"]),
+    ("scale-prior-not-a-table", {"noise.scale_prior": 1.0}, "noise", ["scale_prior = 1.0", "expected dict"]),
     ("origin-time-unknown-mode", {"nuisance.origin_time": "guess"}, "nuisance",
      ["origin_time = 'guess'", "'normal'", "'uniform'"]),
     ("origin-time-sd-zero", {"nuisance.origin_time_sd": 0.0}, "nuisance",
      ["origin_time_sd = 0.0", "positive standard deviation"]),
+    ("origin-time-width-negative", {"nuisance.origin_time_width": -1.0}, "nuisance",
+     ["origin_time_width = -1.0", "positive width"]),
     ("event-depth-not-a-table", {"nuisance.event_depth": 5.0}, "nuisance", ["event_depth = 5.0", "a prior table"]),
     ("delay-negative", {"nuisance.receiver_delay_sd": -0.1}, "nuisance", ["receiver_delay_sd = -0.1", ">= 0"]),
     # units
@@ -233,6 +247,9 @@ PROBLEM_CASES = [
     ("unknown-origin-time-but-known-mode", {**NETWORK, "nuisance": {"origin_time": "known", "event_depth":
                                                                     uniform(0.0, 40.0)}}, "nuisance",
      ["e1", "no origin_time", "origin_time = 'normal' or 'uniform'"]),
+    ("source-without-epicentre-no-prior", {**NETWORK, "data": {**NETWORK["data"],
+                                                                      "sources": "net_sources_no_epicentre.csv"}},
+     "nuisance", ["e2", "no x", "epicentre_x"]),
     ("event-depth-fixed", {**NETWORK, "nuisance": {"origin_time": "normal", "event_depth": {"fixed": 10.0}}},
      "nuisance", ["event_depth", "fixed value is not a prior"]),
     ("s-pick-with-vpvs-mode-none", {"model.vpvs_mode": "none", "prior.vpvs": DELETE}, "model",

@@ -183,7 +183,9 @@ def test_batch_equals_single_models(run, forward, arrays, wave, zs, zr, x):
             single = LayerModel.build(th[m], vp[m], vpvs=vpvs[m], gradient=grad[m])
             s = run(single, wave, x, zs, zr, branch=branch, interface=k)
             assert _same(a.time[m], s.time[0], rtol=1e-12), (branch, k, m)
-            assert _same(a.ray_parameter[m], s.ray_parameter[0], rtol=1e-12), (branch, k, m)
+            # coincident ends (x = 0, same depth) have no defined ray parameter
+            defined = ~((np.asarray(x) == 0) & (np.asarray(zs) == np.asarray(zr)))
+            assert _same(a.ray_parameter[m][defined], s.ray_parameter[0][defined], rtol=1e-12), (branch, k, m)
             assert np.array_equal(a.branch[m], s.branch[0]) and np.array_equal(a.interface[m], s.interface[0])
     # per-model geometry (models, picks): row m of the result is model m with geometry row m
     rng = np.random.default_rng(0)

@@ -51,15 +51,14 @@ def test_reference_constant_layer_integrals(p):
     assert r.integral("T", p, -50, 100) == pytest.approx(150 / (1000 * c), rel=1e-12)
 
 
-@pytest.mark.parametrize("g, v1", [(1.0, 2000.0), (-1.0, 3000.0), (1e-3, 2000.0)])
-@pytest.mark.parametrize("frac", [0.1, 0.6, 0.999999, 1.0])
+@pytest.mark.parametrize("g, v1, frac", [(g, v1, f) for g, v1 in [(1.0, 2000.0), (-1.0, 3000.0), (1e-3, 2000.0)]
+                                          for f in (0.1, 0.6, 0.999999, 1.0) if not (g < 0 and f == 1.0)])
 def test_reference_gradient_layer_integrals(g, v1, frac):
+    # frac = 1: the ray turns at the base of a rising layer (a falling one has no turning point there)
     h = 1000.0
     v2 = v1 + g * h
     p = frac / max(v1, v2)
-    turning = frac == 1.0 and v2 > v1
-    if frac == 1.0 and not turning:
-        pytest.skip("a falling layer has no turning point at its base")
+    turning = frac == 1.0
     r = Reference([h], [v1, 5000.0], [g, 0.0])
     X, T, tau = _grad_closed(p, v1, v2, g)
     assert r.integral("X", p, 0, h, turning) == pytest.approx(X, rel=1e-9)
