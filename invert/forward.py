@@ -760,6 +760,11 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
             raise ValueError(f"interface: only head and reflection branches take an interface (branch {branch!r})")
         kwant = -1
     x, zs, zr = _geometry(distance, source_depth, receiver_depth, model.n_models)
+    return _arrivals(model, wave, x, zs, zr, mode, kwant)
+
+
+def _arrivals(model: LayerModel, wave: str, x, zs, zr, mode: int, kwant: int) -> Arrivals:
+    """travel_times after validation: geometry (G, picks) contiguous float arrays, G = 1 or models."""
     vtop, grad = model.velocity(wave)
     vtop = np.ascontiguousarray(vtop)
     grad = np.ascontiguousarray(grad)
@@ -772,34 +777,64 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
     return Arrivals(time, p, code, iface, deep)
 
 
-def predict(model: LayerModel, wave, branch, interface, distance, source_depth, receiver_depth, *,
-            return_deepest: bool = False):
-    """Times [s] (models, picks) for picks of mixed wave, branch and interface.
+def pick_groups(wave, branch, interface) -> list[tuple[str, str, int, np.ndarray]]:
+    """Group picks by (wave, branch, interface) once: [(wave, branch, interface, indices), ...].
 
-    With ``return_deepest`` also the deepest point of every ray [length]
-    (models, picks), for the depth of investigation.
+    Pass the result to :func:`predict` as ``groups`` to skip the grouping on
+    every call (the sampler calls ``predict`` many thousands of times).
+    """
+    wave = np.asarray(wave).astype(str)
+    branch = np.asarray(branch).astype(str)
+    interface = np.asarray(interface, dtype=int)
+    n = max(wave.size, branch.size, interface.size)
+    wave, branch, interface = (np.broadcast_to(a, (n,)) for a in (wave, branch, interface))
+    keys = np.char.add(np.char.add(wave, "|"), np.char.add(np.char.add(branch, "|"), interface.astype(str)))
+    out = []
+    for key in np.unique(keys):
+        sel = np.flatnonzero(keys == key)
+        w, b, k = key.split("|")
+        out.append((w, b, int(k), sel))
+    return out
+
+
+def predict(model: LayerModel, wave, branch, interface, distance, source_depth, receiver_depth, *,
+            return_deepest: bool = False, groups=None):
+    """Times [s] (models, picks) for picks of mixed wave, branch and interface.
 
     Picks sharing (wave, branch, interface) are computed in one batched call.
     ``wave`` holds 'P'/'S', ``branch`` 'first'/'direct'/'head'/'reflection',
     ``interface`` ints (0 where not applicable); geometry arrays are (picks,)
-    or (models, picks).
+    or (models, picks). ``groups`` (from :func:`pick_groups`) may replace the
+    three label arrays. With ``return_deepest`` also the deepest point of every
+    ray [length] (models, picks), for the depth of investigation.
     """
     x, zs, zr = _geometry(distance, source_depth, receiver_depth, model.n_models)
     n = x.shape[1]
-    wave = np.broadcast_to(np.asarray(wave), (n,))
-    branch = np.broadcast_to(np.asarray(branch), (n,))
-    interface = np.broadcast_to(np.asarray(interface, dtype=int), (n,))
+    if groups is None:
+        groups = pick_groups(np.broadcast_to(np.asarray(wave), (n,)), np.broadcast_to(np.asarray(branch), (n,)),
+                             np.broadcast_to(np.asarray(interface, dtype=int), (n,)))
     out = np.empty((model.n_models, n))
     deep = np.empty((model.n_models, n)) if return_deepest else None
-    keys = np.char.add(np.char.add(wave.astype(str), "|"),
-                       np.char.add(np.char.add(branch.astype(str), "|"), interface.astype(str)))
-    for key in np.unique(keys):
-        sel = np.flatnonzero(keys == key)
-        w, b, k = key.split("|")
-        k = int(k)
-        arr = travel_times(model, w, x[:, sel], zs[:, sel], zr[:, sel], branch=b,
-                           interface=k if b in ("head", "reflection") else None)
-        out[:, sel] = arr.time
-        if return_deepest:
-            deep[:, sel] = arr.deepest
+    whole = len(groups) == 1 and groups[0][3].size == n
+    n_if = model.n_layers - 1
+    for w, b, k, sel in groups:
+        mode = _MODES.get(b)
+        if mode is None:
+            raise ValueError(f"branch: expected one of {', '.join(_MODES)}, got {b!r}")
+        if mode >= 2 and not 1 <= k <= n_if:
+            raise ValueError(f"interface: branch {b!r} needs an interface number 1..{n_if}, got {k!r}")
+        if w not in ("P", "S"):
+            _check_wave(w)
+        if whole:
+            arr = _arrivals(model, w, x, zs, zr, mode, k - 1 if mode >= 2 else -1)
+        else:
+            arr = _arrivals(model, w, np.ascontiguousarray(x[:, sel]), np.ascontiguousarray(zs[:, sel]),
+                            np.ascontiguousarray(zr[:, sel]), mode, k - 1 if mode >= 2 else -1)
+        if whole:
+            out = arr.time
+            deep = arr.deepest if return_deepest else None
+        else:
+            out[:, sel] = arr.time
+            if return_deepest:
+                deep[:, sel] = arr.deepest
     return (out, deep) if return_deepest else out

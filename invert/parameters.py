@@ -143,6 +143,8 @@ def build_models(values: Mapping[str, np.ndarray], settings: LayerSettings) -> t
     ok = valid_rows(arrays)
     if not ok.any():
         return None, ok
-    sel = {k: v[ok] for k, v in arrays.items()}
-    model = LayerModel.build(sel["thickness"], sel["vp"], vs=sel["vs"], gradient=sel["gradient"])
+    sel = {k: np.ascontiguousarray(v[ok]) for k, v in arrays.items()}
+    # rows already passed valid_rows(): construct without repeating LayerModel.build's checks
+    vs_grad = np.where(sel["vs"] > 0, sel["gradient"] * sel["vs"] / sel["vp"], 0.0)
+    model = LayerModel(sel["thickness"], sel["vp"], sel["gradient"], sel["vs"], vs_grad)
     return model, ok

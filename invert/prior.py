@@ -136,6 +136,12 @@ class Uniform(Distribution):
         if not self.low < self.high:
             raise ValueError(f"low must be < high; got low = {self.low:g}, high = {self.high:g}")
         super().__init__(stats.uniform(loc=self.low, scale=self.high - self.low))
+        self._log_density = -math.log(self.high - self.low)
+
+    def logpdf(self, x) -> np.ndarray:
+        """Log-density at ``x``: -log(high - low) inside [low, high], ``-inf`` outside (no scipy call)."""
+        x = np.asarray(x, dtype=float)
+        return np.where((x >= self.low) & (x <= self.high), self._log_density, -np.inf)
 
     def describe(self, unit: str = "") -> str:
         return _with_unit(f"uniform on [{_number(self.low)}, {_number(self.high)}]", unit)

@@ -15,7 +15,7 @@ import numpy as np
 from . import likelihood as lk
 from .config import ConfigError, NoiseSettings, NuisanceSettings, RunConfig
 from .data import PickSet
-from .forward import predict
+from .forward import pick_groups, predict
 from .parameters import LayerSettings, build_models
 from .prior import Distribution, JointPrior, distribution_from_spec, prior_from_toml_table
 
@@ -103,6 +103,7 @@ class Problem:
                 groups.append(lk.OffsetGroup("source delay", picks.source_index, 0.0,
                                              np.full(picks.n_sources, self.nuisance.source_delay_sd)))
             self.plan = lk.prepare_linear_gaussian(picks.sigma, groups)
+        self._groups = pick_groups(picks.wave, picks.branch, picks.interface)
         self._obs = np.asarray(picks.time, dtype=float)
         self._sigma = np.asarray(picks.sigma, dtype=float)
 
@@ -234,7 +235,7 @@ class Problem:
             return out, ok
         x, zs, zr = self.geometry(theta[ok])
         picks = self.picks
-        out[ok] = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr)
+        out[ok] = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, groups=self._groups)
         return out, ok
 
     def deepest_points(self, theta) -> np.ndarray:
@@ -250,7 +251,8 @@ class Problem:
             return out
         x, zs, zr = self.geometry(theta[ok])
         picks = self.picks
-        _, deep = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, return_deepest=True)
+        _, deep = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, return_deepest=True,
+                          groups=self._groups)
         with np.errstate(invalid="ignore"):
             out[ok] = np.nanmax(np.where(np.isfinite(deep), deep, -np.inf), axis=1)
         return out

@@ -150,9 +150,10 @@ class RadialModel:
         (``1 / v^2`` linear in ``r^2``; exact for uniform shells at any
         radius; required for a shell reaching the centre) or ``'flat'``
         (``v / r`` linear in ``ln r``: exactly a linear layer in the
-        flattened coordinates, the flat engine's layer; a uniform shell sags
-        between its ends by about ``v ln(r_top / r_bottom)^2 / 8``, which is
-        small in crust and mantle and large near the centre).
+        flattened coordinates, the flat engine's layer; a uniform shell comes
+        out faster between its ends, by up to about
+        ``v ln(r_top / r_bottom)^2 / 8``: small in crust and mantle, large
+        near the centre).
     """
 
     radius: np.ndarray
@@ -811,7 +812,13 @@ def _polish(x, qlo, flo, qhi, fhi, vref, n, pk, pa, pb, ph, pw, pA, pB, idx):
         q = qn
     xs, ts, ds = _ray(q, vref, n, pk, pa, pb, ph, pw, pA, pB, idx)
     p = np.sqrt((1.0 - q) * (1.0 + q)) / vref
-    return p, ts + p * (x - xs), ds
+    t = ts + p * (x - xs)  # stationary in p: second-order accurate
+    # one Newton step in p itself (qr resolves p poorly as p -> 0, near the antipode)
+    dxdp = ds * (-(vref * vref * p) / q) if q > 0.0 else np.nan
+    step = (x - xs) / dxdp
+    if np.isfinite(step) and abs(step) < 1e-6 * p:
+        p += step
+    return p, t, ds
 
 
 @_jit
@@ -964,7 +971,7 @@ def _fill(r1, r2, l1, l2, last, law, rt, rb, zt, zb, aa, bb,
 
 @_jit
 def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
-            delta, rsrc, rrec, order, mode, kwant, wave_p):
+            delta, rsrc, rrec, order, mode, kwant, wave_p, dmax):
     nm, ns = rt.shape
     npk = delta.shape[1]
     gx = delta.shape[0] > 1
@@ -1168,7 +1175,7 @@ def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                             best_c = 3
                             best_k = sh + 1
                             best_r = rb[m, sh]
-            if (mode == 0 or mode == 3) and d_ok and x >= d_x:
+            if (mode == 0 or mode == 3) and d_ok and x >= d_x and x - d_x <= dmax:
                 t = d_t + d_p * (x - d_x)
                 if t < best_t:
                     best_t = t
@@ -1385,7 +1392,7 @@ def _wave_arrays(model: RadialModel, wave: str):
 
 def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, receiver_depth=0.0, *,
                  branch: str = "first", interface: int | None = None,
-                 distance_unit: str = "deg") -> SphereArrivals:
+                 distance_unit: str = "deg", max_diffraction: float = np.inf) -> SphereArrivals:
     """Travel times of P or S waves through a batch of radial models.
 
     Parameters
@@ -1410,6 +1417,12 @@ def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, rece
         Boundary number k >= 1 (the base of shell k) for head waves.
     distance_unit : {'deg', 'km'}
         Unit of ``distance``.
+    max_diffraction : float, optional
+        Longest arc [degrees] a diffracted wave (Pdiff, Sdiff) may travel
+        along the core boundary; beyond it the branch is absent. Kinematically
+        it exists at any distance past the grazing ray (the default, inf), but
+        its amplitude decays along the boundary, so that at large distances
+        the core phases are the first arrivals observed.
 
     Returns
     -------
@@ -1435,6 +1448,9 @@ def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, rece
         kwant = -1
     if distance_unit not in ("deg", "km"):
         raise ValueError(f"distance_unit: expected 'deg' or 'km', got {distance_unit!r}")
+    dmax = float(max_diffraction)
+    if not dmax >= 0:
+        raise ValueError(f"max_diffraction: expected a number of degrees >= 0, got {max_diffraction!r}")
     x, zs, zr = forward._geometry(distance, source_depth, receiver_depth, model.n_models)
     radius = model.radius
     same_r = bool(np.all(radius == radius[0]))
@@ -1470,13 +1486,13 @@ def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, rece
     law = np.array([LAWS.index(v) for v in model.law], dtype=np.int64)
     out = _kernel(np.ascontiguousarray(radius), np.ascontiguousarray(model.r_top),
                   np.ascontiguousarray(model.r_bottom), law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
-                  delta, rs, rr, order, mode, kwant, wave == "P")
+                  delta, rs, rr, order, mode, kwant, wave == "P", np.radians(dmax))
     time, p, code, iface, deep = out
     return SphereArrivals(time, p, code, iface, deep, wave)
 
 
 def phase_times(model: RadialModel, phase: str, distance, source_depth=0.0, receiver_depth=0.0, *,
-                distance_unit: str = "deg") -> SphereArrivals:
+                distance_unit: str = "deg", max_diffraction: float = np.inf) -> SphereArrivals:
     """Travel times of a phase named in IASPEI style ('P', 'S', 'Pdiff', 'PKPab', 'SKS', ...).
 
     'P' and 'S' are the rays staying above the core (branch 'direct'); see
@@ -1487,7 +1503,7 @@ def phase_times(model: RadialModel, phase: str, distance, source_depth=0.0, rece
         raise ValueError(f"phase: expected one of {', '.join(PHASES)}, got {phase!r}")
     wave, branch = PHASES[phase]
     return travel_times(model, wave, distance, source_depth, receiver_depth, branch=branch,
-                        distance_unit=distance_unit)
+                        distance_unit=distance_unit, max_diffraction=max_diffraction)
 
 
 # ============================================================================ flattening for the flat engine
@@ -1522,8 +1538,8 @@ def flatten_layers(layers: LayerModel, radius: float) -> LayerModel:
     velocity then falls behind the linear law slowly with depth: by a
     relative 1e-4 about 90 km below a top at 35 km depth on a planet of radius
     6371 km, for g = 0). Layers with g = 0 are not exactly constant in the
-    sphere: their velocity sags between the ends by about (h / R)^2 / 8 of its
-    value (5e-6 for a 35 km layer on radius 6371 km).
+    sphere: between the ends their velocity exceeds the end value by up to
+    about (h / R)^2 / 8 of it (4e-6 for a 35 km layer on radius 6371 km).
 
     Parameters
     ----------

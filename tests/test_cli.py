@@ -7,6 +7,7 @@ seen by a shell. All data are small synthetic tables for invented surveys.
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -82,7 +83,7 @@ def help_text(argv, capsys) -> str:
 def test_top_level_help_lists_the_subcommands(capsys):
     text = help_text(["--help"], capsys)
     for command in ("run", "check", "synth", "report"):
-        assert command in text
+        assert re.search(rf"^\s+{command}\s+\S", text, re.MULTILINE), f"no help line for '{command}'"
     assert "licensed professionals" in text  # the caution of the README is part of the help
 
 
@@ -132,13 +133,13 @@ def test_check_good_config_prints_the_parameters(good, capsys):
 
 
 BAD = [
-    # (id, text replaced -> replacement, key that must be named on stderr)
-    ("typo", ("walkers = 12", "walker = 12"), "walker"),
-    ("odd-walkers", ("walkers = 12", "walkers = 13"), "walkers"),
-    ("burn-not-below-steps", ("burn = 10", "burn = 40"), "burn"),
-    ("unknown-vpvs-mode", ('vpvs_mode = "none"', 'vpvs_mode = "ratio"'), "vpvs_mode"),
-    ("missing-picks-file", ('picks = "picks.csv"', 'picks = "gone.csv"'), "picks"),
-    ("missing-prior", ('vp_2 = { dist = "uniform", low = 1000.0, high = 3000.0 }', ""), "vp_2"),
+    # (id, text replaced -> replacement, the key as it must appear on stderr)
+    ("typo", ("walkers = 12", "walker = 12"), "'walker'"),
+    ("odd-walkers", ("walkers = 12", "walkers = 13"), "walkers = 13"),
+    ("burn-not-below-steps", ("burn = 10", "burn = 40"), "burn = 40"),
+    ("unknown-vpvs-mode", ('vpvs_mode = "none"', 'vpvs_mode = "ratio"'), "vpvs_mode = 'ratio'"),
+    ("missing-picks-file", ('picks = "picks.csv"', 'picks = "gone.csv"'), "picks = "),
+    ("missing-prior", ('vp_2 = { dist = "uniform", low = 1000.0, high = 3000.0 }', ""), "prior.vp_2"),
 ]
 
 
