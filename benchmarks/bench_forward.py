@@ -531,7 +531,7 @@ def case_surface(forward, LayerModel, report: Report, args) -> None:
     timed = best_times({
         "engine": engine,
         # where the engine's time goes: the compiled kernel alone, without input checks
-        "kernel": lambda: forward._kernel_surface_constant(thick_c, vp_c, offsets),
+        "kernel": lambda: forward._kernel_surface_constant(thick_c, vp_c, offsets, True),
         "loop": lambda: loop_surface_constant(thickness, vp, offsets),
         "numpy": lambda: numpy_surface_constant(thickness, vp, offsets),
     }, args.repeats, args.min_time)

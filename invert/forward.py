@@ -561,15 +561,17 @@ def _pick(ztop, vtop, grad, x, zs, zr, mode, kwant, va, vb, h, w, vmx,
 
 
 @_jit
-def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant):
+def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant, full):
     nm, nl = vtop.shape
     npk = x.shape[1]
     gx = x.shape[0] > 1
     time = np.empty((nm, npk))
-    pout = np.empty((nm, npk))
-    code = np.zeros((nm, npk), dtype=np.int8)
-    iface = np.zeros((nm, npk), dtype=np.int16)
-    deep = np.empty((nm, npk))
+    # with full = False only times are returned (the other arrays are 1 x 1 placeholders)
+    shape = (nm, npk) if full else (1, 1)
+    pout = np.empty(shape)
+    code = np.zeros(shape, dtype=np.int8)
+    iface = np.zeros(shape, dtype=np.int16)
+    deep = np.empty(shape)
     nmax = 2 * nl + 2
     va = np.empty(nmax)
     vb = np.empty(nmax)
@@ -590,15 +592,16 @@ def _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant):
             t, p, c, k, d = _pick(ztop[m], vtop[m], grad[m], x[g, j], zs[g, j], zr[g, j], mode, kwant,
                                   va, vb, h, w, vmx, c_layer, c_bound, c_plo, c_phi, pg, fg, dg, tg)
             time[m, j] = t
-            pout[m, j] = p
-            code[m, j] = c
-            iface[m, j] = k
-            deep[m, j] = d
+            if full:
+                pout[m, j] = p
+                code[m, j] = c
+                iface[m, j] = k
+                deep[m, j] = d
     return time, pout, code, iface, deep
 
 
 @_jit
-def _kernel_surface_constant(thick, vel, x):
+def _kernel_surface_constant(thick, vel, x, full):
     """First arrivals for surface ends and constant layers: lower envelope of lines.
 
     Direct wave x / v1 and head waves t_k + x / V_k beyond their critical
@@ -607,10 +610,11 @@ def _kernel_surface_constant(thick, vel, x):
     nm, nl = vel.shape
     npk = x.shape[0]
     time = np.empty((nm, npk))
-    pout = np.empty((nm, npk))
-    code = np.empty((nm, npk), dtype=np.int8)
-    iface = np.zeros((nm, npk), dtype=np.int16)
-    deep = np.zeros((nm, npk))
+    shape = (nm, npk) if full else (1, 1)
+    pout = np.empty(shape)
+    code = np.empty(shape, dtype=np.int8)
+    iface = np.zeros(shape, dtype=np.int16)
+    deep = np.zeros(shape)
     icpt = np.empty(nl)
     xcrit = np.empty(nl)
     slow = np.empty(nl)
@@ -621,9 +625,10 @@ def _kernel_surface_constant(thick, vel, x):
         if v0 <= 0.0:
             for j in range(npk):
                 time[m, j] = np.inf
-                pout[m, j] = np.nan
-                code[m, j] = 0
-                deep[m, j] = np.nan
+                if full:
+                    pout[m, j] = np.nan
+                    code[m, j] = 0
+                    deep[m, j] = np.nan
             continue
         vmax = v0
         zacc = 0.0
@@ -665,10 +670,11 @@ def _kernel_surface_constant(thick, vel, x):
                         bk = k + 1
                         bd = depth[k]
             time[m, j] = best
-            pout[m, j] = bp
-            code[m, j] = bc
-            iface[m, j] = bk
-            deep[m, j] = bd
+            if full:
+                pout[m, j] = bp
+                code[m, j] = bc
+                iface[m, j] = bk
+                deep[m, j] = bd
     return time, pout, code, iface, deep
 
 
@@ -763,16 +769,19 @@ def travel_times(model: LayerModel, wave: str, distance, source_depth=0.0, recei
     return _arrivals(model, wave, x, zs, zr, mode, kwant)
 
 
-def _arrivals(model: LayerModel, wave: str, x, zs, zr, mode: int, kwant: int) -> Arrivals:
-    """travel_times after validation: geometry (G, picks) contiguous float arrays, G = 1 or models."""
+def _arrivals(model: LayerModel, wave: str, x, zs, zr, mode: int, kwant: int, full: bool = True) -> Arrivals:
+    """travel_times after validation: geometry (G, picks) contiguous float arrays, G = 1 or models.
+
+    With ``full = False`` only ``time`` is filled (the other fields are 1 x 1 placeholders).
+    """
     vtop, grad = model.velocity(wave)
     vtop = np.ascontiguousarray(vtop)
     grad = np.ascontiguousarray(grad)
     if mode == 0 and x.shape[0] == 1 and not grad.any() and not zs.any() and not zr.any():
-        out = _kernel_surface_constant(np.ascontiguousarray(model.thickness), vtop, x[0])
+        out = _kernel_surface_constant(np.ascontiguousarray(model.thickness), vtop, x[0], full)
     else:
         ztop = np.ascontiguousarray(model.layer_tops)
-        out = _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant)
+        out = _kernel(ztop, vtop, grad, x, zs, zr, mode, kwant, full)
     time, p, code, iface, deep = out
     return Arrivals(time, p, code, iface, deep)
 
@@ -825,11 +834,12 @@ def predict(model: LayerModel, wave, branch, interface, distance, source_depth, 
             raise ValueError(f"interface: branch {b!r} needs an interface number 1..{n_if}, got {k!r}")
         if w not in ("P", "S"):
             _check_wave(w)
+        kk = k - 1 if mode >= 2 else -1
         if whole:
-            arr = _arrivals(model, w, x, zs, zr, mode, k - 1 if mode >= 2 else -1)
+            arr = _arrivals(model, w, x, zs, zr, mode, kk, return_deepest)
         else:
             arr = _arrivals(model, w, np.ascontiguousarray(x[:, sel]), np.ascontiguousarray(zs[:, sel]),
-                            np.ascontiguousarray(zr[:, sel]), mode, k - 1 if mode >= 2 else -1)
+                            np.ascontiguousarray(zr[:, sel]), mode, kk, return_deepest)
         if whole:
             out = arr.time
             deep = arr.deepest if return_deepest else None

@@ -230,12 +230,15 @@ class Problem:
         """Predicted travel times (B, P) [s] (inf where absent or the model is invalid) and the validity mask."""
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
         model, ok = self.models(theta)
-        out = np.full((theta.shape[0], self.picks.n_picks), np.inf)
         if model is None:
-            return out, ok
+            return np.full((theta.shape[0], self.picks.n_picks), np.inf), ok
         x, zs, zr = self.geometry(theta[ok])
         picks = self.picks
-        out[ok] = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, groups=self._groups)
+        pred = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, groups=self._groups)
+        if ok.all():
+            return pred, ok
+        out = np.full((theta.shape[0], self.picks.n_picks), np.inf)
+        out[ok] = pred
         return out, ok
 
     def deepest_points(self, theta) -> np.ndarray:
@@ -268,9 +271,12 @@ class Problem:
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
         pred, ok = self.travel_times(theta)
         n_points = {"pick": self.picks.n_picks, "event": self.picks.n_sources, "total": 1}[self.pointwise_kind]
-        out = np.full((theta.shape[0], n_points), -np.inf)
-        if ok.any():
-            out[ok] = self._pointwise(pred[ok], self._scale(theta[ok]))
+        if ok.all():
+            out = self._pointwise(pred, self._scale(theta))
+        else:
+            out = np.full((theta.shape[0], n_points), -np.inf)
+            if ok.any():
+                out[ok] = self._pointwise(pred[ok], self._scale(theta[ok]))
         return out if pointwise else out.sum(axis=1)
 
     def _pointwise(self, pred, scale):
