@@ -2,56 +2,61 @@
 
 A radial model is a stack of concentric shells from the surface (radius R) to
 the centre, each with P and S velocities (S = 0 in liquid shells) given at its
-top and bottom. Inside a shell the velocity follows one of two laws, chosen so
-that every ray integral has a closed form:
+top and bottom. Between them the velocity follows one of two laws, chosen per
+shell, for both of which every ray integral has a closed form (p = r sin(i) / v
+is the ray parameter [s/rad], eta = r / v, zeta = v / r = 1 / eta):
 
-* an ordinary shell (bottom radius > 0): ``v / r`` is linear in ``ln r``, i.e.
-  the shell is linear in the exactly flattened coordinates
-  ``z_f = R ln(R / r)``, ``v_f = (R / r) v`` (the Earth-flattening
-  transformation; Müller, J. Geophys. 42, 1977, from memory). A ray of
-  spherical ray parameter ``p = r sin(i) / v`` [s/rad] then covers the
-  distance ``R * Delta`` of a flat ray of ray parameter ``p / R`` in the
-  flattened layer, in the same time, so the linear-gradient integrals of the
-  flat engine apply unchanged (``docs/forward.md``). With ``zeta = v / r``
-  [1/s] and the flattened depth ``u = ln(R / r)`` (no R needed)::
+* ``'r2'`` (the default; required for a shell reaching the centre):
+  ``1 / v^2 = A + B r^2``. With ``w = r^2``, ``Q = w (A + B w) - p^2 =
+  eta^2 - p^2`` and ``D = sqrt(A^2 + 4 B p^2)``, measured from the turning
+  point ``w_t = 2 p^2 / (A + D)`` up to radius ``sqrt(w)``::
+
+      Delta = atan2(2 p sqrt(Q), 2 p^2 - A w) / 2
+      T     = [sqrt(Q) + (A / 2) I] / 2,      I = int_{w_t}^{w} dw / sqrt(Q)
+      dDelta/dp = -(A^2 + A B w + 2 B p^2) / (sqrt(Q) D^2)
+
+  (I is a logarithm for B > 0, an arcsine for B < 0, 2 sqrt(Q) / A for B = 0;
+  ``w - w_t = 2 Q / (A + D + 2 B w)`` avoids cancellation). A ray crossing the
+  shell takes the difference of the two ends. Uniform shells (B = 0) are exact
+  at any radius: rays are straight chords. Rays turn in the shell only if
+  ``eta`` falls toward the centre throughout it, which is checked.
+* ``'flat'``: ``v / r`` linear in ``ln r``, i.e. a linear layer in the exactly
+  flattened coordinates ``z_f = R ln(R / r)``, ``v_f = (R / r) v`` (the
+  Earth-flattening transformation; Müller, J. Geophys. 42, 1977, from
+  memory). A ray of ray parameter p covers the distance ``R * Delta`` of a
+  flat ray of ray parameter ``p / R`` in that layer, in the same time, so the
+  linear-gradient integrals of the flat engine (``docs/forward.md``) apply in
+  ``u = ln(R / r)`` and zeta::
 
       Delta = p h (za + zb) / (qa + qb),        q = sqrt(1 - p^2 zeta^2)
       T     = h c log1p(d) / d,  c = [1 + (za + zb)/(zb qa + za qb)] / (za (1 + qb)),
                                  d = (zb - za) c
 
-  for a piece from ``zeta = za`` to ``zb`` over ``h = ln(r_a / r_b)``, and
-  ``Delta = qa / (p g)``, ``T = acosh(1 / (p za)) / g`` (g = dzeta/du) for a
-  ray turning inside it.
-* the innermost shell (bottom radius 0): ``1 / v^2`` is linear in ``r^2``
-  (``1 / v^2 = A + B r^2``). The flattened centre lies at infinite depth, so
-  this shell is integrated directly: with ``w = r^2``,
-  ``Q = w (A + B w) - p^2`` and ``D = sqrt(A^2 + 4 B p^2)``, from the turning
-  point up to radius ``sqrt(w)``::
-
-      Delta = atan2(2 p sqrt(Q), 2 p^2 - A w) / 2
-      T     = [sqrt(Q) + (A / 2) int_{w_t}^{w} dw / sqrt(Q)] / 2
-
-  (``w_t = 2 p^2 / (A + D)``; the integral is elementary: a logarithm for
-  B > 0, an arcsine for B < 0). A uniform core (B = 0) is exact: rays are
-  straight chords.
+  over ``h = ln(r_a / r_b)``, and ``Delta = qa / (p g)``,
+  ``T = acosh(1 / (p za)) / g`` (g = dzeta/du > 0) for a ray turning inside.
+  Between its ends a uniform shell comes out faster by up to
+  ``v ln(r_top / r_bottom)^2 / 8``: negligible in crust and mantle, large
+  near the centre.
 
 Branches (IASPEI standard phase names; Storchak et al., SRL 74, 2003):
-rays staying above the core (P, S: direct up from a buried source, or turning
-in a shell), head waves along a shell boundary, waves diffracted along the
-core-mantle boundary (Pdiff, Sdiff; kinematically a head wave at the velocity
-just above the boundary), P through the liquid outer core (PKPab, PKPbc) and
-through the inner core (PKIKP), S converted to P in the outer core and back
-(SKS) or through the inner core (SKIKS). The core is the deepest run of
-liquid shells (vs = 0) under a solid shell. Absent branches have
-``time = inf`` and ``ray_parameter = nan``.
+rays staying above the core (P, S: up from a buried source, or turning in a
+shell), head waves along a shell boundary above the core, waves diffracted
+along the core-mantle boundary (Pdiff, Sdiff; kinematically a head wave at the
+velocity just above the boundary), P through the liquid outer core (PKPab,
+PKPbc) and through the inner core (PKIKP), S converted to P in the outer core
+and back (SKS) or through the inner core as well (SKIKS). The core is the
+deepest run of liquid shells (vs = 0) under a solid shell. Every root of
+Delta(p) = Delta is searched (26 samples of Delta(p) per turning shell, sign
+changes and extrema polished, branch and bound across shells) and the earliest
+kept. Absent branches have ``time = inf`` and ``ray_parameter = nan``.
 
 For regional work with the flat parameterisation, :func:`flatten_layers`
 turns a flat :class:`~invert.model.LayerModel` into its exactly flattened
-counterpart (same shell law) and :func:`travel_times_flattened` runs the flat
+counterpart ('flat' law) and :func:`travel_times_flattened` runs the flat
 engine on it.
 
 Units: kilometres, km/s, seconds; distances in degrees (or km of arc at the
-surface); ray parameters in s/rad.
+surface); ray parameters in s/rad. Details and checks: ``docs/sphere.md``.
 """
 
 from __future__ import annotations
@@ -329,12 +334,12 @@ class RadialModel:
         if len(lnames) != n:
             raise ValueError(f"names: expected {n} names (layers and half-space), got {len(lnames)}")
         if below is not None:
-            k = slice(start + 1, None)
-            add = lambda a, b: np.concatenate([a, np.broadcast_to(b[:, k], (m, b[:, k].shape[1]))], axis=1)  # noqa: E731
-            top_d = np.concatenate([top_d, np.broadcast_to(radius - below.r_top[:, k], (m, below.n_shells - start - 1))],
-                                   axis=1)
-            bot_d = np.concatenate([bot_d, np.broadcast_to(radius - below.r_bottom[:, k],
-                                                           (m, below.n_shells - start - 1))], axis=1)
+            rest = below.n_shells - start - 1
+
+            def add(a, b):  # append the deeper model's shells below `start` to every model
+                return np.concatenate([a, np.broadcast_to(b[:, start + 1:], (m, rest))], axis=1)
+
+            top_d, bot_d = add(top_d, radius - below.r_top), add(bot_d, radius - below.r_bottom)
             vp_top, vp_bot = add(vp_top, below.vp_top), add(vp_bot, below.vp_bottom)
             vs_top, vs_bot = add(vs_top, below.vs_top), add(vs_bot, below.vs_bottom)
             lnames += list(below.names[start + 1:])
@@ -695,11 +700,13 @@ def _seg(p, va, vb, h, qa, qb):
 
 
 @_jit
-def _centre_one(p, vref, qref2, w, a, b):
-    """Delta, T, dDelta/dp from the turning point up to radius sqrt(w) in a centre shell.
+def _r2_one(p, vref, qref2, w, a, b):
+    """Delta, T, dDelta/dp from the turning point up to radius sqrt(w) in an 'r2' shell.
 
-    The shell has 1 / v^2 = a + b r^2. Returns nan where the ray cannot reach
-    radius sqrt(w) (no turning point below it).
+    The shell has 1 / v^2 = a + b r^2; the turning point is the root
+    w_t = 2 p^2 / (a + D) of Q = w (a + b w) - p^2, whether or not it lies
+    inside the shell (a crossing takes the difference of two ends). Returns
+    nan where Q < 0 (the ray cannot reach radius sqrt(w)).
     """
     eta2 = w * (a + b * w)  # (r / v)^2
     zeta = 1.0 / np.sqrt(eta2)
@@ -745,8 +752,8 @@ def _sum(p, vref, qref2, n, pk, pa, pb, ph, pw, pA, pB):
             qb = _q(pb[i], vref, qref2)
             x, t, d = _seg(p, pa[i], pb[i], ph[i], qa, qb)
         else:
-            x1, t1, d1 = _centre_one(p, vref, qref2, pa[i], pA[i], pB[i])
-            x2, t2, d2 = _centre_one(p, vref, qref2, pb[i], pA[i], pB[i])
+            x1, t1, d1 = _r2_one(p, vref, qref2, pa[i], pA[i], pB[i])
+            x2, t2, d2 = _r2_one(p, vref, qref2, pb[i], pA[i], pB[i])
             x = x1 - x2
             t = t1 - t2
             d = d1 - d2
@@ -777,7 +784,7 @@ def _ray(qr, vref, n, pk, pa, pb, ph, pw, pA, pB, idx):
         tt = np.log1p((qa + qa * qa / (1.0 + pv)) / pv) / g
         dt = -1.0 / (qa * p * p * g)
     else:
-        xt, tt, dt = _centre_one(p, vref, qr2, pa[idx], pA[idx], pB[idx])
+        xt, tt, dt = _r2_one(p, vref, qr2, pa[idx], pA[idx], pB[idx])
     x = xs + 2.0 * xt
     t = ts + 2.0 * tt
     dxdp = ds + 2.0 * dt
@@ -1022,7 +1029,7 @@ def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
         if wave_p:
             use[1] = True
             use[2] = True
-    elif mode == 1:
+    elif mode == 1 or mode == 2:  # head: rays diving beneath a refractor whose v / r rises
         use[0] = True
     elif mode >= 4 and mode <= 6:
         use[1] = True
@@ -1076,7 +1083,7 @@ def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                                 pk[0], pa[0], pb[0], ph[0], pw[0], pA[0], pB[0], prad[0], vmx[0])
                 n_list[0] = n0
                 if use[3] or use[4]:
-                    nu1, n1 = _fill(r1, r2, l1, l2, last_all, law, rt[m], rb[m], czt[m], czb[m], cA[m], cB[m],
+                    _, n1 = _fill(r1, r2, l1, l2, last_all, law, rt[m], rb[m], czt[m], czb[m], cA[m], cB[m],
                                     pk[1], pa[1], pb[1], ph[1], pw[1], pA[1], pB[1], prad[1], vmx[1])
                     n_list[1] = n1
                 # turning candidates
@@ -1098,6 +1105,8 @@ def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                         s_lo = nicb
                         s_hi = ns - 1
                     for sh in range(s_lo, s_hi + 1):
+                        if mode == 2 and (sh != kwant + 1 or kwant < l2):
+                            continue
                         idx = n_u + (sh - l2)
                         vabove = vmx[lst, idx - 1] if idx > 0 else 0.0
                         if not np.isfinite(vabove):
@@ -1309,7 +1318,7 @@ def _kernel(radius, rt, rb, law, wzt, wzb, wA, wB, czt, czb, cA, cB, cmb, icb,
                             best_t = t
                             best_p = r_p[k]
                             best_c = c
-                            best_k = 0
+                            best_k = kwant + 1 if mode == 2 else 0
                             # turning radius
                             pp = r_p[k]
                             if pk[lst, idx] == 0:
@@ -1410,7 +1419,10 @@ def travel_times(model: RadialModel, wave: str, distance, source_depth=0.0, rece
         'first' (earliest of every branch that stays the same wave: for P the
         P, head, Pdiff, PKP and PKIKP branches; for S the S, head and Sdiff
         branches; converted waves are never in it), 'direct' (earliest ray
-        staying above the core: IASPEI P or S), 'head' (needs ``interface``),
+        staying above the core: IASPEI P or S), 'head' (needs ``interface``;
+        where r / v falls below the boundary no head wave exists and the
+        earliest ray turning in the shell just beneath it is returned, as the
+        flat engine does for a refractor with a rising velocity),
         'diffracted' (Pdiff, Sdiff), 'PKP' (earliest outer-core branch),
         'PKPab', 'PKPbc', 'PKIKP' (P only), 'SKS', 'SKIKS' (S only).
     interface : int, optional
@@ -1535,7 +1547,7 @@ def flatten_layers(layers: LayerModel, radius: float) -> LayerModel:
 
     The half-space has no base: its flattened image keeps the flattened
     gradient of its top, ``v / r + g``, all the way down (in the sphere its
-    velocity then falls behind the linear law slowly with depth: by a
+    velocity then falls slowly below that of its linear law: by a
     relative 1e-4 about 90 km below a top at 35 km depth on a planet of radius
     6371 km, for g = 0). Layers with g = 0 are not exactly constant in the
     sphere: between the ends their velocity exceeds the end value by up to
@@ -1587,8 +1599,8 @@ def travel_times_flattened(layers: LayerModel, wave: str, distance, source_depth
         Flat models in km and km/s (see :func:`flatten_layers`).
     wave, branch, interface
         As in :func:`invert.forward.travel_times`. A mantle half-space always
-        has a positive flattened gradient, so its "head wave" is a diving ray
-        there (reported by 'direct' and 'first', not by 'head').
+        has a positive flattened gradient, so its "head wave" is a ray diving
+        beneath the interface: 'head' returns that ray (branch code diving).
     distance : array (picks,) or (models, picks)
         Distance along the surface [km] (R times the epicentral angle).
     source_depth, receiver_depth : float or array
