@@ -248,6 +248,11 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
     """
     config = load_config(config_path)
     if steps is not None:
+        if not config.sampler.until_converged and int(steps) <= config.sampler.burn:
+            from .config import ConfigError
+
+            raise ConfigError(config.path, "sampler", f"--steps {int(steps)} must be larger than burn = "
+                                                      f"{config.sampler.burn}")
         config = dataclasses.replace(config, sampler=dataclasses.replace(config.sampler, steps=int(steps)))
     picks = read_picks(config.picks, config.sources, config.receivers)
     _say(f"Data: {picks.describe()}", quiet)
