@@ -7,12 +7,13 @@ and what was expected. Nothing is evaluated.
 from __future__ import annotations
 
 import difflib
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .parameters import S_MODES, LayerSettings
+from .parameters import GEOMETRIES, S_MODES, LayerSettings, SphereSettings
 
 UNITS = {"m": ("m", "m/s"), "km": ("km", "km/s")}
 NOISE_MODELS = ("gaussian", "outlier_mixture", "student_t")
@@ -105,7 +106,8 @@ _TOP_KEYS = {"title", "units", "prior_file", "data", "model", "prior", "constrai
              "sampler", "output", "truth"}
 _SECTION_KEYS = {
     "data": {"picks", "sources", "receivers"},
-    "model": {"layers", "gradient_layers", "vpvs_mode", "depth_parameter", "fluid_layers"},
+    "model": {"layers", "gradient_layers", "vpvs_mode", "depth_parameter", "fluid_layers", "geometry",
+              "planet_radius", "max_diffraction"},
     "noise": {"model", "scale", "scale_prior", "outlier_fraction", "outlier_sigma", "dof"},
     "nuisance": {"origin_time", "origin_time_mean", "origin_time_sd", "origin_time_width", "event_depth",
                  "epicentre_x", "epicentre_y", "receiver_delay_sd", "source_delay_sd"},
@@ -182,6 +184,8 @@ def load_config(path) -> RunConfig:
     template: dict = {}
     if "prior_file" in raw:
         tpath = _path(base, _get(path, "", raw, "prior_file", str, expect="a path to a TOML prior template"))
+        if not tpath.exists():
+            raise ConfigError(path, "", f"prior_file = {raw['prior_file']!r}: file not found ({tpath})")
         template = _read_toml(tpath)
         _unknown(tpath, "", template.keys(), {"template", "prior", "constraints"})
         template_units = template.get("template", {}).get("units")
@@ -215,7 +219,9 @@ def load_config(path) -> RunConfig:
     model = {**from_template, **raw.get("model", {})}
     _unknown(path, "model", model.keys(), _SECTION_KEYS["model"])
     int_list = (lambda v: isinstance(v, list) and all(isinstance(i, int) and not isinstance(i, bool) for i in v))
-    layers = LayerSettings(
+    geometry = _get(path, "model", model, "geometry", str, "flat", check=lambda v: v in GEOMETRIES,
+                    expect="'flat' (layers over a half-space) or 'sphere' (shells of a spherical planet)")
+    shape = dict(
         n_layers=_get(path, "model", model, "layers", int, required=True, check=lambda v: v >= 0,
                       expect="the number of layers above the half-space (an integer >= 0)"),
         gradient_layers=tuple(_get(path, "model", model, "gradient_layers", list, [], check=int_list,
@@ -227,6 +233,28 @@ def load_config(path) -> RunConfig:
         fluid_layers=tuple(_get(path, "model", model, "fluid_layers", list, [], check=int_list,
                                 expect="a list of layer numbers")),
     )
+    if geometry == "flat":
+        for key in ("planet_radius", "max_diffraction"):
+            if key in model:
+                raise ConfigError(path, "model", f"{key} is used only with geometry = 'sphere'")
+        layers = LayerSettings(**shape)
+    else:
+        if units != "km":
+            raise ConfigError(path, "", f"units = {units!r}, but geometry = 'sphere' needs units = 'km' "
+                                        "(kilometres, km/s)")
+        if sources is not None:
+            raise ConfigError(path, "data", "geometry = 'sphere' reads the geometry inline from the picks file: "
+                                            "distance = arc length along the surface [km], source_depth, "
+                                            "receiver_depth; remove 'sources' and 'receivers'")
+        layers = SphereSettings(
+            **shape,
+            planet_radius=_get(path, "model", model, "planet_radius", float, required=True,
+                               check=lambda v: math.isfinite(v) and v > 0, expect="the planet radius in km (> 0)"),
+            max_diffraction=_get(path, "model", model, "max_diffraction", float, math.inf,
+                                 check=lambda v: v >= 0,
+                                 expect="the longest arc in degrees (>= 0; inf: no limit) along the core boundary "
+                                        "over which a diffracted wave counts as a first arrival"),
+        )
     prior = {**template.get("prior", {}), **raw.get("prior", {})}
     constraints = {**template.get("constraints", {}), **raw.get("constraints", {})}
 

@@ -18,7 +18,8 @@ normalised prior, and know nothing about layers or travel times.
   phylogenetic model selection", Systematic Biology 60, 2011) over a ladder
   of inverse temperatures ``0 = beta_0 < ... < beta_K = 1``, each power
   posterior ``prior x likelihood^beta`` sampled with emcee. Its error comes
-  from a block bootstrap of every rung's samples. The thermodynamic-
+  from every rung's samples (block bootstrap and delta method, whichever is
+  larger, with the slowest autocorrelation time). The thermodynamic-
   integration estimate (Lartillot & Philippe, "Computing Bayes factors using
   thermodynamic integration", Systematic Biology 55, 2006) of the same
   ladder is reported beside it as a diagnostic.
@@ -155,22 +156,22 @@ def _check_loglike(values: np.ndarray, n: int) -> np.ndarray:
 # Batched evaluation for dynesty
 # ----------------------------------------------------------------------------
 class _Slot:
-    __slots__ = ("done", "value", "error")
+    __slots__ = ("event", "value", "error")
 
     def __init__(self):
-        self.done, self.value, self.error = False, None, None
+        self.event, self.value, self.error = threading.Event(), None, None
 
 
 class BatchingPool:
     """A thread "pool" whose ``map`` answers per-point calls in batches.
 
     dynesty proposes ``queue_size`` new points through ``pool.map``; each
-    proposal calls the prior transform and the log-likelihood one point at a
-    time. Here the proposals run in ``size`` worker threads, and each
-    per-point call waits until every worker with work is waiting too; the
-    gathered points then go through one batched call. Only one thread runs
-    at a time (the others wait), and every proposal carries its own random
-    seed, so the results are those of a serial run with the same proposals.
+    proposal calls the log-likelihood one point at a time. Here the proposals
+    run in ``size`` worker threads, and each per-point call waits until every
+    worker with work is waiting too; the gathered points then go through one
+    batched call. Only one thread runs at a time (the others wait), and every
+    proposal carries its own random seed, so the results are those of a
+    serial run with the same proposals.
 
     Parameters
     ----------
@@ -181,8 +182,11 @@ class BatchingPool:
 
     Notes
     -----
-    Call :meth:`close` (or use the pool as a context manager) to end the
-    worker threads.
+    Waking a thread costs of the order of 10-100 microseconds (more on a
+    loaded machine), so batching pays when one call of the likelihood costs
+    much more than that, as the travel-time likelihood does (about a
+    millisecond per call whatever the batch size). Call :meth:`close` (or use
+    the pool as a context manager) to end the worker threads.
     """
 
     def __init__(self, functions: dict[str, Callable], size: int):
@@ -191,12 +195,15 @@ class BatchingPool:
         self.functions = functions
         self.size = int(size)
         self.batches = 0
-        self._cond = threading.Condition()
+        self._lock = threading.Lock()
+        self._start = threading.Condition(self._lock)
+        self._done = threading.Event()
         self._active = 0
         self._pending: list = []
         self._local = threading.local()
         self._threads: list[threading.Thread] = []
         self._job = None
+        self._next = 0
         self._generation = 0
         self._finished = 0
         self._closed = False
@@ -223,13 +230,12 @@ class BatchingPool:
         if not getattr(self._local, "worker", False):  # outside map: evaluate directly
             return np.asarray(self.functions[name](x[None, :]))[0]
         slot = _Slot()
-        with self._cond:
+        with self._lock:
             self._pending.append((name, x, slot))
             self._active -= 1
             if self._active == 0:
                 self._flush()
-            while not slot.done:
-                self._cond.wait()
+        slot.event.wait()
         if slot.error is not None:
             raise slot.error
         return slot.value
@@ -252,25 +258,24 @@ class BatchingPool:
             except BaseException as exc:  # handed to every waiting thread
                 for it in items:
                     it[2].error = exc
-            for it in items:
-                it[2].done = True
         self.batches += 1
         self._active += len(pending)
-        self._cond.notify_all()
+        for item in pending:
+            item[2].event.set()
 
     def _worker(self) -> None:
         self._local.worker = True
         seen = 0
         while True:
-            with self._cond:
+            with self._start:
                 while self._generation == seen and not self._closed:
-                    self._cond.wait()
+                    self._start.wait()
                 if self._closed:
                     return
                 seen = self._generation
                 func, items, results, failures = self._job
             while True:
-                with self._cond:
+                with self._lock:
                     i = self._next
                     self._next += 1
                 if i >= len(items):
@@ -279,12 +284,13 @@ class BatchingPool:
                     results[i] = func(items[i])
                 except BaseException as exc:
                     failures.append((i, exc))
-            with self._cond:
+            with self._lock:
                 self._active -= 1
                 self._finished += 1
                 if self._active == 0 and self._pending:
                     self._flush()
-                self._cond.notify_all()
+                if self._finished == self.size:
+                    self._done.set()
 
     def map(self, func: Callable, iterable) -> list:
         """``[func(x) for x in iterable]`` with the per-point calls inside batched."""
@@ -299,25 +305,25 @@ class BatchingPool:
             self._threads.append(t)
         results: list = [None] * len(items)
         failures: list = []
-        with self._cond:
+        with self._start:
             self._job = (func, items, results, failures)
             self._next = 0
             self._finished = 0
             self._active = self.size
+            self._done.clear()
             self._generation += 1
-            self._cond.notify_all()
-            while self._finished < self.size:
-                self._cond.wait()
-            self._job = None
+            self._start.notify_all()
+        self._done.wait()
+        self._job = None
         if failures:
             raise min(failures, key=lambda f: f[0])[1]
         return results
 
     def close(self) -> None:
         """End the worker threads."""
-        with self._cond:
+        with self._start:
             self._closed = True
-            self._cond.notify_all()
+            self._start.notify_all()
         for t in self._threads:
             t.join(timeout=5)
         self._threads = []
@@ -327,7 +333,8 @@ class BatchingPool:
 # Nested sampling
 # ----------------------------------------------------------------------------
 def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: int, *, live_points: int = 400,
-                    dlogz: float = 0.01, sample: str = "auto", bound: str = "multi", queue_size: int | None = None,
+                    dlogz: float = 0.1, sample: str = "auto", bound: str = "multi",
+                    queue_size: int | None = None,
                     seed: int = 0, max_calls: int | None = None, progress: bool = True,
                     label: str = "") -> EvidenceResult:
     """Log evidence by nested sampling (dynesty's static sampler).
@@ -347,12 +354,17 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
         with H the information (Skilling 2006, sec. 4).
     dlogz : float
         Stop when the live points could add at most this much to log Z
-        (dynesty's criterion); their remaining mass is then added.
+        (dynesty's criterion); the remaining live points are then added to the
+        integral. dynesty's own default, 0.001 (live_points - 1) + 0.01, stops
+        early for thousands of live points and inflates the stated error, so
+        a fixed 0.1 is used.
     sample, bound : str
         dynesty's proposal and bounding methods (``'auto'`` picks uniform
         sampling in the bounds below 10 dimensions, random walks above).
     queue_size : int, optional
-        Proposals evaluated together (default ``max(8, live_points // 4)``).
+        Proposals evaluated together in one batched likelihood call (default
+        ``max(8, live_points // 2)``); 1 evaluates one point per call without
+        threads, which is faster for likelihoods that cost microseconds.
     seed : int
         Seed of dynesty's random generator; same seed, same result.
     max_calls : int, optional
@@ -385,7 +397,7 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
     if live_points < 2 * ndim + 2:
         raise ValueError(f"live_points = {live_points} is too few for {ndim} parameters "
                          f"(use at least {2 * ndim + 2}; a few hundred for a stated error of a few tenths)")
-    queue = int(queue_size) if queue_size else max(8, live_points // 4)
+    queue = int(queue_size) if queue_size else max(8, live_points // 2)
     loglike = _Counted(log_likelihood, "log_likelihood")
     ptform = _Counted(prior_transform, "prior_transform")
 
@@ -399,28 +411,34 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
         # dynesty works in the unit cube; the prior transform runs inside the same batched call
         return _check_loglike(loglike(transform(u)), u.shape[0])
 
-    pool = BatchingPool({"logl": cube_loglike}, size=queue)
     rng = np.random.default_rng(seed)
     t0 = time.perf_counter()
-    sampler = dynesty.NestedSampler(pool.per_point("logl"), _identity, ndim, nlive=int(live_points),
-                                    bound=bound, sample=sample, rstate=rng, pool=pool, queue_size=queue,
-                                    use_pool={"update_bound": False, "prior_transform": False})
+    if queue > 1:
+        pool = BatchingPool({"logl": cube_loglike}, size=queue)
+        sampler = dynesty.NestedSampler(pool.per_point("logl"), _identity, ndim, nlive=int(live_points),
+                                        bound=bound, sample=sample, rstate=rng, pool=pool, queue_size=queue,
+                                        use_pool={"update_bound": False, "prior_transform": False})
+    else:  # serial: one point per call (for likelihoods that cost little per call)
+        pool = None
+        sampler = dynesty.NestedSampler(lambda u: float(cube_loglike(np.asarray(u)[None, :])[0]), _identity, ndim,
+                                        nlive=int(live_points), bound=bound, sample=sample, rstate=rng)
     bar = _progress(progress, f"nested sampling{' ' + label if label else ''}", unit=" it")
 
-    def show(results, niter, ncall, add_live_it=None, dlogz=None, **_):
+    def show(results, niter, ncall, **_):
         if bar is None:
             return
         bar.update(max(0, niter - bar.n))
         logz = getattr(results, "logz", np.nan)
         remain = getattr(results, "delta_logz", np.nan)
-        bar.set_postfix_str(f"calls {loglike.rows:,}, log Z {logz:.2f}, remaining {remain:.3g} (stop < {dlogz:g})",
+        bar.set_postfix_str(f"calls {loglike.rows:,}, log Z {logz:.2f}, remaining {remain:.3g} (stop < {dlogz:.3g})",
                             refresh=False)
 
     try:
         sampler.run_nested(dlogz=dlogz, maxcall=max_calls, print_progress=bar is not None, print_func=show,
                            add_live=True)
     finally:
-        pool.close()
+        if pool is not None:
+            pool.close()
         if bar is not None:
             bar.close()
     seconds = time.perf_counter() - t0
@@ -444,7 +462,8 @@ def nested_sampling(log_likelihood: Callable, prior_transform: Callable, ndim: i
         notes.append("nested sampling returned no usable error estimate")
     details = {"live_points": int(live_points), "iterations": iterations, "information_nats": info,
                "efficiency": float(res["eff"]) / 100.0, "sample": sampler.internal_sampler.__class__.__name__,
-               "bound": bound, "queue_size": queue, "batched_calls": pool.batches, "dlogz": float(dlogz),
+               "bound": bound, "queue_size": queue,
+               "batched_calls": pool.batches if pool is not None else loglike.rows, "dlogz": float(dlogz),
                "posterior_ess": ess, "seed": int(seed),
                "error_formula": "sqrt(H / live points) accumulated by dynesty (Skilling 2006)"}
     return EvidenceResult("nested sampling", log_z, log_z_error, loglike.rows, seconds, samples, ll, details, notes)
@@ -530,12 +549,20 @@ def _integrated_time(x: np.ndarray) -> float:
 
 
 def _rung_ratio(loglike: np.ndarray, dbeta: float, rng: np.random.Generator, n_boot: int,
-                max_blocks: int = 50) -> dict:
-    """log E[L^dbeta] from one rung's draws (steps, walkers) with a block-bootstrap standard error.
+                tau_floor: float = 1.0, max_blocks: int = 50) -> dict:
+    """log E[L^dbeta] from one rung's draws (steps, walkers) with its standard error.
 
-    Whole steps (all walkers of a step together) are resampled in blocks at
-    least twice the integrated autocorrelation time of the per-step mean
-    weight long, so that the blocks are close to independent.
+    The error is the larger of two estimates that both treat whole steps
+    (all walkers of a step together) as the unit:
+
+    * a block bootstrap, with blocks at least twice the autocorrelation time
+      long, so that they are close to independent;
+    * the delta method, sd(per-step mean weight) / mean weight x sqrt(tau / steps).
+
+    The autocorrelation time used is the larger of that of the per-step mean
+    weight and ``tau_floor`` (the slowest parameter of the chain): from a
+    short chain the weight's own estimate comes out too small, and blocks
+    that are too short understate the error.
     """
     a = dbeta * loglike  # (T, W); -inf where the likelihood is zero
     top = float(np.max(a))
@@ -544,22 +571,23 @@ def _rung_ratio(loglike: np.ndarray, dbeta: float, rng: np.random.Generator, n_b
     w = np.exp(a - top)
     per_step = w.mean(axis=1)  # (T,)
     n_steps = per_step.size
-    tau = _integrated_time(per_step)
-    blocks = int(np.clip(n_steps // max(1, math.ceil(2.0 * tau)), 1, max_blocks))
+    tau = max(_integrated_time(per_step), float(tau_floor))
+    blocks = int(np.clip(n_steps // max(1, math.ceil(2.0 * tau)), 2, max_blocks)) if n_steps >= 2 else 1
     length = n_steps // blocks
     used = per_step[n_steps - blocks * length:]  # drop the oldest remainder
     block_means = used.reshape(blocks, length).mean(axis=1)
-    estimate = top + math.log(per_step.mean())
+    mean = float(per_step.mean())
+    estimate = top + math.log(mean)
+    error = np.inf
     if blocks >= 2:
         idx = rng.integers(0, blocks, size=(n_boot, blocks))
         boot = block_means[idx].mean(axis=1)
         with np.errstate(divide="ignore"):
             boot_log = np.log(boot)
-        error = float(np.std(boot_log[np.isfinite(boot_log)], ddof=1)) if np.isfinite(boot_log).sum() > 1 else np.inf
-        if not np.all(np.isfinite(boot_log)):
-            error = np.inf
-    else:
-        error = np.inf
+        if np.all(np.isfinite(boot_log)):
+            error = float(np.std(boot_log, ddof=1))
+        delta = float(np.std(per_step, ddof=1) / mean * math.sqrt(tau / n_steps))
+        error = max(error, delta)
     wf = w.ravel()
     ess = float(wf.sum() ** 2 / np.sum(wf ** 2))
     return {"log_ratio": estimate, "error": error, "tau": tau, "blocks": blocks, "ess": ess}
@@ -567,7 +595,7 @@ def _rung_ratio(loglike: np.ndarray, dbeta: float, rng: np.random.Generator, n_b
 
 def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: Callable, ndim: int, *,
                    rungs: int = 24, power: float = 5.0, ladder=None, walkers: int | None = None,
-                   steps: int = 400, burn: int = 100, seed: int = 0, moves=None, n_boot: int = 1000,
+                   steps: int = 1000, burn: int = 200, seed: int = 0, moves=None, n_boot: int = 1000,
                    progress: bool = True, label: str = "") -> EvidenceResult:
     """Log evidence by the stepping-stone estimator over a ladder of power posteriors.
 
@@ -665,6 +693,7 @@ def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: 
     if not np.all(np.isfinite(lp0)):
         raise ValueError("sample_prior returned draws where log_prior is -inf: the two do not describe the same prior")
     rung_ll = [ll0.reshape(steps, walkers)]
+    rung_tau = [1.0]  # independent draws
     acceptance = [1.0]
     if bar is not None:
         bar.update(steps)
@@ -692,6 +721,8 @@ def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: 
         blobs = np.asarray(sampler.get_blobs(), dtype=float)
         state = chain[-1]
         rung_ll.append(blobs[burn:])
+        kept = chain[burn:].mean(axis=1)  # (steps, D): walker means, the slowest parameter sets the floor
+        rung_tau.append(max(_integrated_time(kept[:, d]) for d in range(ndim)))
         acceptance.append(float(np.mean(sampler.acceptance_fraction)))
         last_chain = chain[burn:]
     if bar is not None:
@@ -701,7 +732,7 @@ def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: 
     rows = []
     log_z, var = 0.0, 0.0
     for k in range(len(betas) - 1):
-        r = _rung_ratio(rung_ll[k], float(betas[k + 1] - betas[k]), rng_boot, n_boot)
+        r = _rung_ratio(rung_ll[k], float(betas[k + 1] - betas[k]), rng_boot, n_boot, tau_floor=rung_tau[k])
         log_z += r["log_ratio"]
         var += r["error"] ** 2
         rows.append({"beta": float(betas[k]), "next_beta": float(betas[k + 1]), **r, "acceptance": acceptance[k],
@@ -713,6 +744,13 @@ def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: 
     samples = last_chain.reshape(-1, ndim)
     ll_post = rung_ll[-1].reshape(-1)
     notes = []
+    short = [i for i, r in enumerate(rows[:-1]) if r["tau"] is not None and np.isfinite(r["tau"])
+             and steps < 50 * r["tau"]]
+    if short:
+        notes.append(f"stepping-stone rungs {', '.join(str(i) for i in short)} ran fewer than 50 autocorrelation "
+                     "times (a common rule of thumb for trusting the estimate of the autocorrelation time; from "
+                     "memory): from short chains that time, and with it the stated error, tends to come out too "
+                     "small; run more steps per rung")
     weak = [i for i, r in enumerate(rows[:-1]) if r["blocks"] is not None and r["blocks"] < 5]
     if weak:
         notes.append(f"stepping-stone rungs {', '.join(str(i) for i in weak)} hold fewer than 5 independent blocks "
@@ -730,7 +768,8 @@ def stepping_stone(log_likelihood: Callable, log_prior: Callable, sample_prior: 
                "thermodynamic_integration": ti,
                "thermodynamic_integration_note": "trapezoid rule over the same ladder (Lartillot & Philippe 2006); "
                                                  "its discretisation error is not estimated",
-               "error_formula": "sum over rungs of block-bootstrap variances of log r_k"}
+               "error_formula": "sum over rungs of the variance of log r_k: the larger of a block bootstrap and "
+                                "the delta method, with the autocorrelation time of the slowest parameter"}
     return EvidenceResult("stepping-stone", float(log_z), float(math.sqrt(var)), loglike.rows, seconds, samples,
                           ll_post, details, notes)
 

@@ -10,6 +10,7 @@ interface k is the base of layer k):
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Mapping
 
@@ -19,6 +20,9 @@ from .model import MIN_SOLID_VPVS, LayerModel
 from .prior import parameter_names
 
 S_MODES = ("per_layer", "shared", "vs", "none")
+
+#: Geometries of a run: layers over a half-space, or shells of a spherical planet.
+GEOMETRIES = ("flat", "sphere")
 
 #: Nominal Vp/Vs used to fill S velocities when a run has no S picks (never used in a forward call).
 _P_ONLY_VPVS = 2.0
@@ -67,11 +71,55 @@ class LayerSettings:
         """Layers including the half-space."""
         return self.n_layers + 1
 
+    @property
+    def geometry(self) -> str:
+        """'flat': the layers lie over a half-space (see :class:`SphereSettings` for planets)."""
+        return "flat"
+
     def names(self) -> list[str]:
         """Every layer parameter name of this parameterisation, in the prior's order."""
         return list(parameter_names(self.total_layers, vpvs_mode=self.vpvs_mode,
                                     gradient_layers=sorted(self.gradient_layers),
                                     depth_parameter=self.depth_parameter))
+
+
+@dataclass(frozen=True)
+class SphereSettings(LayerSettings):
+    """Shape of the layered model of a run on a spherical planet (``[model] geometry = "sphere"``).
+
+    The layers are shells from the surface down, with the same parameters
+    as in a flat run; :func:`invert.sphere.RadialModel.from_layers` turns
+    them into a planet: every layer a shell with the same depths and end
+    velocities (``'flat'`` law: ``v / r`` linear in ``ln r``), the half-space
+    a shell filling the planet to its centre (``'r2'`` law:
+    ``1 / v^2`` linear in ``r^2``, with the velocity of its linear law at the
+    centre). A fluid half-space under solid layers is a liquid core.
+
+    Attributes
+    ----------
+    planet_radius : float
+        Radius of the planet [km].
+    max_diffraction : float
+        Longest arc [degrees] along the core boundary over which a
+        diffracted wave (Pdiff, Sdiff) counts as a first arrival (inf: any).
+    """
+
+    planet_radius: float = math.nan
+    max_diffraction: float = math.inf
+
+    def __post_init__(self):
+        super().__post_init__()
+        if not (isinstance(self.planet_radius, (int, float)) and math.isfinite(self.planet_radius)
+                and self.planet_radius > 0):
+            raise ValueError(f"model.planet_radius: expected a positive radius in km, got {self.planet_radius!r}")
+        if not (isinstance(self.max_diffraction, (int, float)) and self.max_diffraction >= 0):
+            raise ValueError(f"model.max_diffraction: expected an arc in degrees >= 0 (inf: no limit), "
+                             f"got {self.max_diffraction!r}")
+
+    @property
+    def geometry(self) -> str:
+        """'sphere': the layers are shells of a planet of radius ``planet_radius``."""
+        return "sphere"
 
 
 def _column(values: Mapping[str, np.ndarray], name: str, n: int) -> np.ndarray:
@@ -148,3 +196,40 @@ def build_models(values: Mapping[str, np.ndarray], settings: LayerSettings) -> t
     vs_grad = np.where(sel["vs"] > 0, sel["gradient"] * sel["vs"] / sel["vp"], 0.0)
     model = LayerModel(sel["thickness"], sel["vp"], sel["gradient"], sel["vs"], vs_grad)
     return model, ok
+
+
+def build_radial_models(model: LayerModel | None, ok: np.ndarray, settings: SphereSettings):
+    """Planets of the layer models built by :func:`build_models`: (RadialModel or None, validity mask (B,)).
+
+    ``model`` holds the rows where ``ok`` is True. Rows whose half-space
+    starts at or below the centre, or that the radial model rejects, are
+    marked invalid (zero posterior density) instead of raising.
+    """
+    from .sphere import RadialModel
+
+    ok = np.array(ok, dtype=bool)
+    if model is None:
+        return None, ok
+    radius = float(settings.planet_radius)
+    inside = model.layer_tops[:, -1] < radius
+    keep = np.flatnonzero(inside)
+    if keep.size:
+        sub = model if inside.all() else model.take(keep)
+        try:
+            radial = RadialModel.from_layers(sub, radius)
+        except ValueError:
+            good = []
+            for i in range(sub.n_models):
+                try:
+                    RadialModel.from_layers(sub.take([i]), radius)
+                    good.append(i)
+                except ValueError:
+                    pass
+            inside[keep[np.setdiff1d(np.arange(sub.n_models), good)]] = False
+            keep = np.flatnonzero(inside)
+            radial = RadialModel.from_layers(model.take(keep), radius) if keep.size else None
+    else:
+        radial = None
+    rows = np.flatnonzero(ok)
+    ok[rows[~inside]] = False
+    return radial, ok

@@ -4,6 +4,11 @@ A :class:`Problem` maps a batch of free-parameter vectors ``theta`` (B, D) --
 the layer parameters of the prior followed by nuisance parameters (event
 depths, unknown epicentres, a noise scale) -- to log prior, predicted travel
 times and log likelihood, all walkers in one call.
+
+With :class:`~invert.parameters.SphereSettings` (``[model] geometry =
+"sphere"``) the layers are shells of a planet and the times come from the
+spherical engine (:mod:`invert.sphere`); distances are then arc lengths along
+the surface [km].
 """
 
 from __future__ import annotations
@@ -16,7 +21,7 @@ from . import likelihood as lk
 from .config import ConfigError, NoiseSettings, NuisanceSettings, RunConfig
 from .data import PickSet
 from .forward import pick_groups, predict
-from .parameters import LayerSettings, build_models
+from .parameters import LayerSettings, build_models, build_radial_models
 from .prior import Distribution, JointPrior, distribution_from_spec, prior_from_toml_table
 
 
@@ -34,6 +39,7 @@ class Problem:
     noise: NoiseSettings = field(default_factory=NoiseSettings)
     nuisance: NuisanceSettings = field(default_factory=NuisanceSettings)
     units: str = "m"
+    source: str = "run description"  # the run description's path, named in error messages
 
     def __post_init__(self):
         picks = self.picks
@@ -43,10 +49,13 @@ class Problem:
         # ---------------------------------------------------------- S picks need S parameters
         if self.layers.vpvs_mode == "none" and np.any(picks.wave == "S"):
             line = int(picks.line_numbers[np.argmax(picks.wave == "S")])
-            raise ConfigError("run description", "model",
+            raise ConfigError(self.source, "model",
                               f"vpvs_mode = 'none' but {picks.path}, line {line} is an S pick; "
                               "choose 'per_layer', 'shared' or 'vs'")
         self._check_fluid_crossings()
+        self.sphere = self.layers.geometry == "sphere"
+        if self.sphere:
+            self._check_sphere()
         # ---------------------------------------------------------- event depths and epicentres
         self._depth_col = np.full(picks.n_sources, -1)
         self._x_col = np.full(picks.n_sources, -1)
@@ -54,7 +63,7 @@ class Problem:
         for s in np.flatnonzero(~picks.depth_known):
             spec = self.nuisance.event_depth
             if spec is None:
-                raise ConfigError("run description", "nuisance",
+                raise ConfigError(self.source, "nuisance",
                                   f"source {picks.source_names[s]} has no depth in {picks.sources_path}; give "
                                   "event_depth = { dist = ..., ... } (a prior for unknown source depths)")
             self._depth_col[s] = self._add(f"event_depth_{picks.source_names[s]}", spec, "nuisance.event_depth")
@@ -62,7 +71,7 @@ class Problem:
             for axis, cols in (("x", self._x_col), ("y", self._y_col)):
                 spec = getattr(self.nuisance, f"epicentre_{axis}")
                 if spec is None:
-                    raise ConfigError("run description", "nuisance",
+                    raise ConfigError(self.source, "nuisance",
                                       f"source {picks.source_names[s]} has no {axis} in {picks.sources_path}; "
                                       f"give epicentre_{axis} = {{ dist = ..., ... }}")
                 cols[s] = self._add(f"event_{axis}_{picks.source_names[s]}", spec, f"nuisance.epicentre_{axis}")
@@ -76,7 +85,7 @@ class Problem:
         self.marginal_origin = bool((~known).any())
         if self.marginal_origin and self.nuisance.origin_time == "known":
             s = int(np.argmax(~known))
-            raise ConfigError("run description", "nuisance",
+            raise ConfigError(self.source, "nuisance",
                               f"source {picks.source_names[s]} has no origin_time in {picks.sources_path}; set "
                               "origin_time = 'normal' or 'uniform' to marginalise unknown origin times")
         first_pick = np.full(picks.n_sources, np.inf)
@@ -92,7 +101,7 @@ class Problem:
         self.plan = None
         if self.delays:
             if self.noise.model != "gaussian":
-                raise ConfigError("run description", "nuisance",
+                raise ConfigError(self.source, "nuisance",
                                   "delay terms are marginalised in closed form for Gaussian noise only; "
                                   "set [noise] model = 'gaussian' or turn the delays off")
             groups = [lk.OffsetGroup.origin_times(picks.source_index, self.origin_prior)]
@@ -148,10 +157,44 @@ class Problem:
                                       f"(Vs = 0 from {top:g} to {bottom:g} {self.units}); S cannot travel there. "
                                       "Remove the pick or correct its wave")
 
+    def _check_sphere(self) -> None:
+        """Sphere runs: inline geometry in km, branches the spherical engine has, ends inside the planet."""
+        picks = self.picks
+        where = self.source
+        if self.units != "km":
+            raise ConfigError(where, "", f"units = {self.units!r}, but geometry = 'sphere' needs units = 'km'")
+        if picks.geometry != "inline":
+            raise ConfigError(picks.sources_path or where, "data",
+                              "geometry = 'sphere' reads distances inline (arc length along the surface [km]); "
+                              "geometry tables are not read as coordinates on a sphere")
+        bad = np.flatnonzero(picks.branch == "reflection")
+        if bad.size:
+            j = bad[0]
+            raise ConfigError(picks.path, "data", f"line {int(picks.line_numbers[j])}, column 'branch': the "
+                              "spherical engine computes no reflections; use first, direct or head picks")
+        radius = float(self.layers.planet_radius)
+        half = np.pi * radius
+        checks = (("distance", picks.distance, lambda v: v <= half * (1 + 1e-12),
+                   f"is longer than half the circumference ({half:g} km)"),
+                  ("source_depth", picks.source_depth, lambda v: v < radius,
+                   f"lies at or below the centre (planet_radius = {radius:g} km)"),
+                  ("receiver_depth", picks.receiver_depth, lambda v: v < radius,
+                   f"lies at or below the centre (planet_radius = {radius:g} km)"))
+        for name, values, good, what in checks:
+            values = np.asarray(values, dtype=float)
+            out = np.flatnonzero(~good(values))
+            if out.size:
+                j = out[0]
+                raise ConfigError(picks.path, "data", f"line {int(picks.line_numbers[j])}, column '{name}': "
+                                  f"{values[j]:g} km {what}")
+
     def _add(self, name: str, spec, where: str) -> int:
-        dist = distribution_from_spec(spec, where)
+        try:
+            dist = distribution_from_spec(spec, where)
+        except ValueError as exc:
+            raise ConfigError(self.source, where.split(".")[0], str(exc)) from None
         if not isinstance(dist, Distribution):
-            raise ConfigError("run description", where.split(".")[0], f"{where}: a fixed value is not a prior "
+            raise ConfigError(self.source, where.split(".")[0], f"{where}: a fixed value is not a prior "
                               "(give the value in the geometry table instead)")
         self.nuisance_names.append(name)
         self.nuisance_priors.append(dist)
@@ -202,6 +245,27 @@ class Problem:
         values = self.prior.values(theta[:, :self.n_layer_params])
         return build_models(values, self.layers)
 
+    def radial_models(self, theta):
+        """Sphere runs: (RadialModel of the valid rows or None, validity mask (B,))."""
+        model, ok = self.models(theta)
+        return build_radial_models(model, ok, self.layers)
+
+    def _predict_sphere(self, radial, x, zs, zr, return_deepest: bool = False):
+        """Times (and deepest points) [s, km] (M, P) from the spherical engine, by pick group."""
+        from . import sphere
+
+        n = self.picks.n_picks
+        out = np.empty((radial.n_models, n))
+        deep = np.empty((radial.n_models, n)) if return_deepest else None
+        for w, b, k, sel in self._groups:
+            arr = sphere.travel_times(radial, w, x[..., sel], zs[..., sel], zr[..., sel], branch=b,
+                                      interface=k if b == "head" else None, distance_unit="km",
+                                      max_diffraction=self.layers.max_diffraction)
+            out[:, sel] = arr.time
+            if return_deepest:
+                deep[:, sel] = arr.deepest
+        return (out, deep) if return_deepest else out
+
     def geometry(self, theta):
         """Per-pick distance, source depth, receiver depth: (P,) or (B, P) when sampled."""
         picks = self.picks
@@ -229,12 +293,15 @@ class Problem:
     def travel_times(self, theta) -> tuple[np.ndarray, np.ndarray]:
         """Predicted travel times (B, P) [s] (inf where absent or the model is invalid) and the validity mask."""
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
-        model, ok = self.models(theta)
+        model, ok = self.radial_models(theta) if self.sphere else self.models(theta)
         if model is None:
             return np.full((theta.shape[0], self.picks.n_picks), np.inf), ok
         x, zs, zr = self.geometry(theta[ok])
         picks = self.picks
-        pred = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, groups=self._groups)
+        if self.sphere:
+            pred = self._predict_sphere(model, x, zs, zr)
+        else:
+            pred = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, groups=self._groups)
         if ok.all():
             return pred, ok
         out = np.full((theta.shape[0], self.picks.n_picks), np.inf)
@@ -248,14 +315,17 @@ class Problem:
         it is seen by no pick and is constrained by the prior alone.
         """
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
-        model, ok = self.models(theta)
+        model, ok = self.radial_models(theta) if self.sphere else self.models(theta)
         out = np.full(theta.shape[0], np.nan)
         if model is None:
             return out
         x, zs, zr = self.geometry(theta[ok])
         picks = self.picks
-        _, deep = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, return_deepest=True,
-                          groups=self._groups)
+        if self.sphere:
+            _, deep = self._predict_sphere(model, x, zs, zr, return_deepest=True)
+        else:
+            _, deep = predict(model, picks.wave, picks.branch, picks.interface, x, zs, zr, return_deepest=True,
+                              groups=self._groups)
         with np.errstate(invalid="ignore"):
             out[ok] = np.nanmax(np.where(np.isfinite(deep), deep, -np.inf), axis=1)
         return out
@@ -356,4 +426,4 @@ def build_problem(config: RunConfig, picks: PickSet | None = None) -> Problem:
     except ValueError as exc:
         raise ConfigError(config.path, "prior", str(exc)) from None
     return Problem(picks=picks, layers=config.layers, prior=prior, noise=config.noise, nuisance=config.nuisance,
-                   units=config.units)
+                   units=config.units, source=str(config.path))

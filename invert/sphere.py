@@ -1518,6 +1518,26 @@ def phase_times(model: RadialModel, phase: str, distance, source_depth=0.0, rece
                         distance_unit=distance_unit, max_diffraction=max_diffraction)
 
 
+def epicentral_distance(lon1, lat1, lon2, lat2) -> np.ndarray:
+    """Angle [degrees] between points given by longitude and latitude [degrees] on a sphere.
+
+    The arctangent form of the central angle (accurate at every distance,
+    antipodes included; the same as the haversine formula where both work)::
+
+        Delta = atan2(sqrt((cos f2 sin dl)^2 + (cos f1 sin f2 - sin f1 cos f2 cos dl)^2),
+                      sin f1 sin f2 + cos f1 cos f2 cos dl)
+
+    with latitudes f1, f2 and dl = lon2 - lon1. Geocentric latitudes: the
+    planet is a sphere. Multiply the angle in radians by the radius for the
+    arc length along the surface.
+    """
+    f1, f2 = np.radians(np.asarray(lat1, dtype=float)), np.radians(np.asarray(lat2, dtype=float))
+    dl = np.radians(np.asarray(lon2, dtype=float) - np.asarray(lon1, dtype=float))
+    num = np.hypot(np.cos(f2) * np.sin(dl), np.cos(f1) * np.sin(f2) - np.sin(f1) * np.cos(f2) * np.cos(dl))
+    den = np.sin(f1) * np.sin(f2) + np.cos(f1) * np.cos(f2) * np.cos(dl)
+    return np.degrees(np.arctan2(num, den))
+
+
 # ============================================================================ flattening for the flat engine
 def flatten_depth(depth, radius: float) -> np.ndarray:
     """Flattened depth z_f = R ln(R / (R - z)) [km] of true depth z [km] (negative above the surface)."""

@@ -12,11 +12,13 @@ thickness = [4.0, 10.0]
 vp = [400.0, 1600.0, 3000.0]
 vpvs = [2.5, 4.0, 2.0]       # or vs = [...]; gradient = [...] optional
 [survey]
-kind = "line"                # "line", "borehole" or "network"
+kind = "line"                # "line", "borehole", "network" or "global"
 ...
 [output]
 picks = "picks.csv"
 ```
+
+``kind = "global"`` puts the layers on a spherical planet (:func:`global_survey`).
 """
 
 from __future__ import annotations
@@ -31,7 +33,7 @@ from .data import read_picks, write_picks
 from .forward import predict
 from .model import LayerModel
 
-SURVEY_KINDS = ("line", "borehole", "network")
+SURVEY_KINDS = ("line", "borehole", "network", "global")
 
 
 def model_from_table(table: dict, where: str = "model") -> LayerModel:
@@ -185,6 +187,71 @@ def network(model: LayerModel, survey: dict, rng: np.random.Generator, folder: P
     read_picks(folder / picks_name, folder / "sources.csv", folder / "receivers.csv")  # validate what was written
 
 
+def global_survey(model: LayerModel, survey: dict, rng: np.random.Generator, folder: Path, picks_name: str,
+                  comment: str) -> None:
+    """Events and stations on a spherical planet: first arrivals through the spherical engine.
+
+    The layers of ``model`` are shells from the surface down
+    (:meth:`invert.sphere.RadialModel.from_layers`: the half-space fills the
+    planet to its centre). Keys: ``planet_radius`` [km], ``events = [{ name,
+    lon, lat, depth }, ...]``, ``stations = [{ name, lon, lat }, ...]``
+    (optional ``depth``), ``waves``, ``sigma``, ``max_diffraction`` [deg]
+    (default inf). Distances are great-circle arcs along the surface,
+    written inline in km. Every origin time is 0. A station in the shadow of
+    the core for a wave (no first arrival of that wave in the true model) gets
+    no pick: such pairs are listed in the comment lines of the picks file,
+    not dropped silently.
+    """
+    from . import sphere
+
+    ev = survey.get("events")
+    st = survey.get("stations")
+    if not isinstance(ev, list) or not isinstance(st, list) or not ev or not st:
+        raise ValueError("[survey] global needs 'events' and 'stations' lists of tables "
+                         "({ name, lon, lat, depth } and { name, lon, lat })")
+    radius = survey.get("planet_radius")
+    if not isinstance(radius, (int, float)) or isinstance(radius, bool) or not radius > 0:
+        raise ValueError(f"[survey] planet_radius: expected the planet radius in km, got {radius!r}")
+    radius = float(radius)
+    dmax = float(survey.get("max_diffraction", np.inf))
+    waves = survey.get("waves", ["P", "S"])
+    planet = sphere.RadialModel.from_layers(model, radius)
+    rows = {k: [] for k in ("source", "receiver", "wave", "distance", "source_depth", "receiver_depth")}
+    angles = []
+    for e in ev:
+        for s in st:
+            angle = float(sphere.epicentral_distance(e["lon"], e["lat"], s["lon"], s["lat"]))
+            for w in waves:
+                for key, val in zip(rows, (e["name"], s["name"], w, np.radians(angle) * radius, float(e["depth"]),
+                                           float(s.get("depth", 0.0)))):
+                    rows[key].append(val)
+                angles.append(angle)
+    cols = {k: np.asarray(v) for k, v in rows.items()}
+    angles = np.asarray(angles)
+    t = np.empty(angles.size)
+    for w in np.unique(cols["wave"]):
+        sel = cols["wave"] == w
+        t[sel] = sphere.travel_times(planet, str(w), angles[sel], cols["source_depth"][sel],
+                                     cols["receiver_depth"][sel], max_diffraction=dmax).time[0]
+    sigma = _sigma(survey, cols["wave"])
+    noisy = t + rng.standard_normal(t.shape) * sigma
+    keep = np.isfinite(t)
+    lines = [comment,
+             f"spherical planet of radius {radius:g} km (shells from the surface down; half-space to the centre); "
+             f"distance = great-circle arc along the surface [km]; diffracted waves counted up to "
+             f"{dmax:g} deg along the core boundary"]
+    absent = [f"{cols['source'][j]}-{cols['receiver'][j]} {cols['wave'][j]} ({angles[j]:.1f} deg)"
+              for j in np.flatnonzero(~keep)]
+    if absent:
+        lines.append(f"no first arrival in the true model (not written, {len(absent)}): " + ", ".join(absent))
+    out = {k: v[keep] for k, v in cols.items()}
+    out["branch"] = np.full(int(keep.sum()), "first")
+    out["interface"] = np.zeros(int(keep.sum()), dtype=int)
+    out["time"] = noisy[keep]
+    out["sigma"] = np.asarray(sigma, dtype=float)[keep]
+    write_picks(folder / picks_name, out, comment="\n".join(lines))
+
+
 def make_synthetic(spec_path) -> Path:
     """Write the synthetic pick table(s) described by ``spec_path``; returns the picks path."""
     spec_path = Path(spec_path)
@@ -211,6 +278,9 @@ def make_synthetic(spec_path) -> Path:
                    f"seed {int(spec.get('seed', 0))}")
         if survey.get("kind") == "network":
             network(model, survey, rng, folder, picks_name, comment)
+            return folder / picks_name
+        if survey.get("kind") == "global":
+            global_survey(model, survey, rng, folder, picks_name, comment)
             return folder / picks_name
         cols = layout(survey)
         synth = synthesize(model, cols, _sigma(survey, cols["wave"]), rng)

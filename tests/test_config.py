@@ -238,9 +238,7 @@ CASES = [
      ["prior.vp_1", "'dist' must be one of", "uniform"]),
 ]
 
-# Errors found while assembling the problem from the data; these name the run description
-# only as "run description", not by its path (reported; see the xfail marks below).
-NAMES_NO_FILE = "invert/problem.py raises ConfigError('run description', ...) without the run file's path"
+# Errors found while assembling the problem from the data; they name the run description by its path.
 PROBLEM_CASES = [
     ("source-without-depth-no-prior", {**NETWORK, "nuisance": {"origin_time": "normal"}}, "nuisance",
      ["e1", "no depth", "event_depth"]),
@@ -283,7 +281,7 @@ def test_error_names_key_and_expectation(folder, case_id, changes, section, frag
 
 @pytest.mark.parametrize(
     "case_id, changes, section, fragments",
-    CASES + [pytest.param(*c, marks=pytest.mark.xfail(strict=True, reason=NAMES_NO_FILE)) for c in PROBLEM_CASES],
+    CASES + PROBLEM_CASES,
     ids=[c[0] for c in CASES + PROBLEM_CASES])
 def test_error_names_the_file(folder, case_id, changes, section, fragments):
     path, err = _error_for(folder, changes)
@@ -308,8 +306,6 @@ def test_invalid_toml_names_file_and_line(folder):
     assert "line" in message
 
 
-@pytest.mark.xfail(strict=True, reason="a missing prior_file is reported under the template's own path, "
-                                       "without the run description or the key 'prior_file'")
 def test_missing_prior_template_names_run_file_and_key(folder):
     path = folder / "run.toml"
     path.write_text(toml_text(changed(BASE, {"prior_file": "nothere.toml"})))
@@ -320,8 +316,6 @@ def test_missing_prior_template_names_run_file_and_key(folder):
     assert str(path) in message and "prior_file" in message
 
 
-@pytest.mark.xfail(strict=True, reason="an invalid nuisance prior raises a plain ValueError from "
-                                       "invert/prior.py, not ConfigError, so 'invert check' shows a traceback")
 def test_bad_event_depth_prior_is_a_config_error(folder):
     path = folder / "run.toml"
     path.write_text(toml_text(changed(BASE, {**NETWORK, "nuisance": {

@@ -1,0 +1,319 @@
+"""Model comparison and the low-velocity-zone test on synthetic refraction lines.
+
+Every data set here is synthetic: P travel times computed from the true models stated in
+this file (invented sites), plus seeded Gaussian noise, on a reversed line (shots 1 m beyond
+both ends of a 60 m spread). Layer counts in test names include the half-space: a
+"3-layer truth" is two layers over a half-space (run descriptions say `layers = 2`).
+
+What is checked, and against what:
+
+* Occam's razor -- a 3-layer truth with small noise: 3 layers favoured over 2 by ln B > 5
+  ("very strong" on the scale of Kass & Raftery, J. Am. Stat. Assoc. 90, 1995, sec. 3.2;
+  from memory), and 4 layers not favoured over 3 by more than about 1 nat.
+* Low-velocity zone -- a truth with a slower layer plus reflections from its base: the
+  permissive model favoured; a monotone truth with the same picks: it is not; and the
+  textbook effect of ignoring a slower layer -- the refractor below comes out deeper
+  (Telford, Geldart & Sheriff, "Applied Geophysics", 2nd ed., 1990, sec. 4.3; from memory).
+* The one-run cross-check B(monotone : permissive) = P(monotone | data) / P(monotone)
+  (encompassing-prior identity) against the two-run Bayes factor, and the two evidence
+  estimators against each other, within their combined errors.
+* Model probabilities against Bayes' theorem for models worked by hand, the verbal scale
+  against its stated thresholds, and the model-averaged density against its definition.
+
+The default suite uses few live points and short ladders; the `slow` versions repeat the
+layered checks with both estimators at longer settings.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from invert import compare as cmp
+from invert.config import load_config
+from invert.problem import build_problem
+from invert.synthetic import make_synthetic
+
+TINY = cmp.EvidenceSettings(estimators=("nested",), live_points=50, seed=3)
+SMALL = cmp.EvidenceSettings(estimators=("nested",), live_points=80, seed=3)
+SMALL_BOTH = cmp.EvidenceSettings(live_points=80, rungs=10, rung_steps=120, rung_burn=40, seed=3)
+LONG_BOTH = cmp.EvidenceSettings(live_points=400, rungs=24, rung_steps=500, rung_burn=150, seed=5)
+
+
+def toml_list(values) -> str:
+    return "[" + ", ".join(repr(float(v)) for v in values) + "]"
+
+
+def write_line(folder: Path, thickness, vp, *, branches=("first",), sigma=0.001, seed=5) -> None:
+    """Synthetic reversed line (P only) from a stated true model."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "survey.toml").write_text(f"""\
+title = "synthetic refraction line at an invented site"
+units = "m"
+seed = {seed}
+[model]
+thickness = {toml_list(thickness)}
+vp = {toml_list(vp)}
+vpvs = {toml_list([2.0] * len(vp))}
+[survey]
+kind = "line"
+shots = [-1.0, 61.0]
+receivers = {{ first = 0.0, last = 60.0, spacing = 5.0 }}
+waves = ["P"]
+branches = {json.dumps(list(branches))}
+sigma = {sigma!r}
+[output]
+picks = "picks.csv"
+""")
+    make_synthetic(folder / "survey.toml")
+
+
+def write_run(folder: Path, name: str, layers: int, *, vp_high=6000.0, slower=()) -> Path:
+    extra = f"slower_allowed = {list(slower)}\n" if slower else ""
+    (folder / f"{name}.toml").write_text(f"""\
+title = "synthetic line, {layers} layer(s) over a half-space"
+units = "m"
+[data]
+picks = "picks.csv"
+[model]
+layers = {layers}
+vpvs_mode = "none"
+[prior]
+thickness = {{ dist = "uniform", low = 0.5, high = 30.0 }}
+vp = {{ dist = "uniform", low = 150.0, high = {vp_high!r} }}
+[constraints]
+increasing_velocity = true
+{extra}[output]
+folder = "run_{name}"
+""")
+    return folder / f"{name}.toml"
+
+
+def command(argv) -> int:
+    parser = argparse.ArgumentParser(prog="invert")
+    sub = parser.add_subparsers(dest="command", required=True)
+    cmp.add_commands(sub)
+    args = parser.parse_args(argv)
+    return args.func(args)
+
+
+# ============================================================================ pieces (no sampling)
+def test_model_probabilities_follow_bayes_theorem():
+    # P(m | d) = w_m Z_m / sum_j w_j Z_j, worked by hand: Z = (1, 3), equal weights -> (1/4, 3/4);
+    # weights (3, 1) -> (3/6, 3/6)
+    out = cmp.model_probabilities(np.array([0.0, math.log(3.0)]), np.zeros(2), np.ones(2))
+    assert np.allclose(out["probability"], [0.25, 0.75])
+    out = cmp.model_probabilities(np.array([0.0, math.log(3.0)]), np.zeros(2), np.array([3.0, 1.0]))
+    assert np.allclose(out["probability"], [0.5, 0.5]) and np.allclose(out["prior"], [0.75, 0.25])
+    # errors: one model known exactly, the other +-1 nat: the spread is that of a logistic of N(0, 1)
+    out = cmp.model_probabilities(np.zeros(2), np.array([0.0, 1.0]), np.ones(2), rng=np.random.default_rng(0))
+    sims = 1 / (1 + np.exp(np.random.default_rng(1).standard_normal(200000)))
+    assert out["error"][0] == pytest.approx(sims.std(), rel=0.03)
+
+
+def test_kass_raftery_thresholds():
+    # Kass & Raftery (1995) on 2 ln B: 2, 6, 10 (from memory) -> ln B 1, 3, 5
+    assert cmp.kass_raftery(0.99) == "not worth more than a bare mention"
+    assert cmp.kass_raftery(1.01) == "positive"
+    assert cmp.kass_raftery(3.01) == "strong"
+    assert cmp.kass_raftery(5.01) == "very strong"
+    assert cmp.kass_raftery(-5.01) == "very strong"
+
+
+def test_combined_estimate():
+    def res(z, e):
+        return cmp.ev.EvidenceResult("x", z, e, 0, 0.0, np.zeros((1, 1)), np.zeros(1))
+
+    # inverse-variance weighting (common practice)
+    z, e, agree = cmp.combine_estimates([res(1.0, 0.1), res(1.3, 0.2)])
+    assert agree["agree"] and z == pytest.approx((1.0 / 0.01 + 1.3 / 0.04) / (1 / 0.01 + 1 / 0.04))
+    assert e == pytest.approx(1 / math.sqrt(1 / 0.01 + 1 / 0.04))
+    z, e, agree = cmp.combine_estimates([res(1.0, 0.1), res(3.0, 0.1)])
+    assert not agree["agree"] and z == pytest.approx(2.0) and e >= 1.0
+
+
+def test_velocity_density_is_the_probability_weighted_mixture(tmp_path):
+    # two one-layer-over-half-space "posteriors" with fixed velocities: at depth 0 the mixture puts
+    # weight 0.3 on 500 m/s and 0.7 on 800 m/s, by definition of the mixture
+    write_line(tmp_path, [4.0], [500.0, 2000.0])
+    problem = build_problem(load_config(write_run(tmp_path, "one", 1)))
+    a = np.tile([4.0, 500.0, 2000.0], (50, 1))
+    b = np.tile([4.0, 800.0, 2000.0], (50, 1))
+    out = cmp.velocity_density([(problem, a), (problem, b)], np.array([0.3, 0.7]), n_velocity=60,
+                               rng=np.random.default_rng(0))
+    dv = np.diff(out["velocity"])[0]
+    row = out["density"][0] * dv
+    assert row.sum() == pytest.approx(1.0)
+    near = lambda v: int(np.argmin(np.abs(out["velocity"] - v)))  # noqa: E731
+    assert row[near(500.0)] == pytest.approx(0.3) and row[near(800.0)] == pytest.approx(0.7)
+    deep = out["density"][-1] * dv
+    assert deep[near(2000.0)] == pytest.approx(1.0)
+
+
+def test_data_coverage_and_lvz_constraints(tmp_path):
+    write_line(tmp_path, [4.0, 6.0], [800.0, 500.0, 2500.0])
+    config = load_config(write_run(tmp_path, "two", 2))
+    perm = build_problem(cmp.with_constraints(config, slower=[2]))
+    mono = build_problem(cmp.with_constraints(config, slower=[]))
+    cov = cmp.data_coverage(perm, 2)
+    assert cov["first_arrivals_only"] and cov["reflections"] == 0
+    # P(monotone) under the permissive prior: three exchangeable uniform velocities, permissive order
+    # vp_2 < vp_3 (probability 1/2) and monotone vp_1 < vp_2 < vp_3 (1/6): 1/3 (combinatorics)
+    p = cmp._prior_probability_monotone(mono, perm, np.random.default_rng(0), 2)
+    assert p["exact"] == pytest.approx(1 / 3, abs=1e-6)
+    assert abs(p["monte_carlo"] - 1 / 3) < 4 * p["monte_carlo_error"]
+
+
+def test_bad_requests_are_clear_errors(tmp_path):
+    write_line(tmp_path, [4.0], [500.0, 2000.0])
+    path = write_run(tmp_path, "one", 1)
+    with pytest.raises(cmp.ConfigError, match="layer number 2..2"):
+        cmp.lvz_test(path, layer=3, settings=SMALL, progress=False)
+    with pytest.raises(ValueError, match="estimators"):
+        cmp.EvidenceSettings(estimators=("bogus",))
+    (tmp_path / "list.toml").write_text('[[candidate]]\nconfig = "one.toml"\n')
+    with pytest.raises(cmp.ConfigError, match="at least two"):
+        cmp.read_candidate_list(tmp_path / "list.toml")
+
+
+# ============================================================================ Occam's razor
+THREE_LAYER_TRUTH = ([4.0, 10.0], [500.0, 1500.0, 3000.0])
+
+
+def layer_count_case(folder: Path, settings: cmp.EvidenceSettings) -> dict:
+    write_line(folder, *THREE_LAYER_TRUTH)
+    for n in (1, 2, 3):
+        write_run(folder, f"layers{n}", n)
+    est = ", ".join(f'"{e}"' for e in settings.estimators)
+    (folder / "compare.toml").write_text(f"""\
+title = "How many layers? (synthetic line)"
+[[candidate]]
+name = "2 layers"
+config = "layers1.toml"
+[[candidate]]
+name = "3 layers"
+config = "layers2.toml"
+[[candidate]]
+name = "4 layers"
+config = "layers3.toml"
+[evidence]
+estimators = [{est}]
+live_points = {settings.live_points}
+rungs = {settings.rungs}
+rung_steps = {settings.rung_steps}
+rung_burn = {settings.rung_burn}
+seed = {settings.seed}
+[output]
+folder = "comparison"
+""")
+    assert command(["compare", str(folder / "compare.toml"), "--quiet"]) == 0
+    doc = json.loads((folder / "comparison" / "comparison.json").read_text())
+    return {r["model"]: r for r in doc["models"]} | {"_doc": doc}
+
+
+def check_occam(rows: dict) -> None:
+    two, three, four = rows["2 layers"], rows["3 layers"], rows["4 layers"]
+    ln_b_32 = three["log_z"] - two["log_z"]
+    ln_b_43 = four["log_z"] - three["log_z"]
+    err_43 = math.hypot(four["log_z_error"], three["log_z_error"])
+    assert ln_b_32 > 5, ln_b_32
+    # "not favoured by more than about 1 nat", allowing 3 combined stated errors
+    assert ln_b_43 < 1.0 + 3 * err_43, (ln_b_43, err_43)
+    assert two["posterior_probability"] < 0.01
+
+
+def test_occam_three_layers_small(tmp_path):
+    rows = layer_count_case(tmp_path, SMALL)
+    check_occam(rows)
+    folder = tmp_path / "comparison"
+    for name in ("comparison.csv", "comparison.md", "layer_count.csv", "velocity_density.csv",
+                 "velocity_quantiles.csv", "velocity_density.png"):
+        assert (folder / name).exists(), name
+    layer_rows = rows["_doc"]["layer_count"]
+    assert sum(r["posterior_probability"] for r in layer_rows) == pytest.approx(1.0)
+    assert "Kass & Raftery" in (folder / "comparison.md").read_text()
+    # the model-averaged median profile in the top layer (well fixed by the direct wave) is near the truth
+    q = np.loadtxt(folder / "velocity_quantiles.csv", delimiter=",", skiprows=1)
+    depth, median = q[:, 0], q[:, 3]
+    assert abs(np.interp(2.0, depth, median) - 500.0) < 60
+
+
+@pytest.mark.slow
+def test_occam_three_layers_long(tmp_path):
+    rows = layer_count_case(tmp_path, LONG_BOTH)
+    check_occam(rows)
+    for r in (v for k, v in rows.items() if not k.startswith("_")):
+        assert r["estimators_agree"], r
+
+
+# ============================================================================ low-velocity zone
+def lvz_case(folder: Path, vp, settings, branches=("first", "reflection:2")) -> dict:
+    write_line(folder, [4.0, 6.0], vp, branches=branches)
+    path = write_run(folder, "run", 2, vp_high=4000.0)
+    return cmp.lvz_test(path, layer=2, settings=settings, folder=folder / "lvz", progress=False)
+
+
+def test_lvz_favoured_when_reflections_see_it(tmp_path):
+    # the slower layer wins by some hundred nats here, so a tiny nested-sampling run suffices
+    out = lvz_case(tmp_path, [800.0, 500.0, 2500.0], TINY)
+    t = out["tests"][0]
+    assert t["log_bayes_factor"] > 5 and t["favours"] == "slower layer"
+    assert t["posterior_inversion_probability"] > 0.95
+    assert t["prior_inversion_probability"] == pytest.approx(2 / 3, abs=1e-6)
+    assert t["one_run_agrees_with_two_runs"]
+    # ignoring the slower layer puts the refractor below it deeper (Telford et al. 1990, from memory)
+    depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
+    assert depth["median_monotone"] > depth["median_permissive"]
+    text = (tmp_path / "lvz" / "lvz_test.md").read_text()
+    assert "no head wave at its top" in text and "reflections from its base" in text
+    assert "first arrivals only" not in text
+
+
+def check_monotone_truth(out: dict) -> dict:
+    t = out["tests"][0]
+    # not favoured: below zero within three combined stated errors
+    assert t["log_bayes_factor"] < 3 * t["log_bayes_factor_error"], t["log_bayes_factor"]
+    # the data exclude an inversion, so B(monotone : slower) reaches its cap 1 / P(monotone) = 3
+    assert t["posterior_inversion_probability"] < 0.05
+    assert -t["log_bayes_factor"] == pytest.approx(math.log(3.0), abs=3 * t["log_bayes_factor_error"])
+    assert t["one_run_agrees_with_two_runs"]
+    return t
+
+
+def test_monotone_truth_not_called_a_lvz_small(tmp_path):
+    out = lvz_case(tmp_path, [500.0, 1200.0, 2500.0], SMALL_BOTH)
+    t = check_monotone_truth(out)
+    assert out["monotone"]["estimators_agree"] and t["estimators_agree"], out["markdown"]
+
+
+@pytest.mark.slow
+def test_monotone_truth_not_called_a_lvz_long(tmp_path):
+    out = lvz_case(tmp_path, [500.0, 1200.0, 2500.0], LONG_BOTH)
+    t = check_monotone_truth(out)
+    assert out["monotone"]["estimators_agree"] and t["estimators_agree"], out["markdown"]
+
+
+@pytest.mark.slow
+def test_lvz_with_reflections_long(tmp_path):
+    out = lvz_case(tmp_path, [800.0, 500.0, 2500.0], LONG_BOTH)
+    t = out["tests"][0]
+    assert t["log_bayes_factor"] > 5 and t["posterior_inversion_probability"] > 0.95
+    assert out["monotone"]["estimators_agree"] and t["estimators_agree"], out["markdown"]
+
+
+@pytest.mark.slow
+def test_lvz_with_first_arrivals_only_is_prior_driven(tmp_path):
+    out = lvz_case(tmp_path, [800.0, 500.0, 2500.0], LONG_BOTH, branches=("first",))
+    t = out["tests"][0]
+    assert t["coverage"]["first_arrivals_only"]
+    assert "verdict is driven by the prior" in out["markdown"]
+    # no data can favour the monotone model by more than the cap
+    assert -t["log_bayes_factor"] <= t["log_cap_monotone"] + 3 * t["log_bayes_factor_error"]
+    depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
+    assert depth["median_monotone"] > depth["median_permissive"]
+    assert t["one_run_agrees_with_two_runs"]
