@@ -118,6 +118,10 @@ def build_parser() -> argparse.ArgumentParser:
                     help="site-class band edges for Vs30 (default ASCE7-16: 1500/760/360/180 m/s); "
                          "always check the code that applies locally")
     rp.set_defaults(func=_cmd_report)
+
+    from .compare import add_commands
+
+    add_commands(sub)  # `invert compare` and `invert lvz-test` (docs/evidence.md)
     return p
 
 
