@@ -266,9 +266,11 @@ def test_lvz_favoured_when_reflections_see_it(tmp_path):
     assert t["posterior_inversion_probability"] > 0.95
     assert t["prior_inversion_probability"] == pytest.approx(2 / 3, abs=1e-6)
     assert t["one_run_agrees_with_two_runs"]
-    # ignoring the slower layer puts the refractor below it deeper (Telford et al. 1990, from memory)
+    # ignoring the slower layer puts the refractor below it deeper (Telford et al. 1990, from memory):
+    # deeper than under the permissive model, which finds the true depth (10 m) within 2 sd
     depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
-    assert depth["median_monotone"] > depth["median_permissive"]
+    assert depth["median_monotone"] > depth["median_permissive"] + 2 * depth["posterior_sd"], depth
+    assert abs(depth["median_permissive"] - 10.0) < 2 * depth["posterior_sd"] + 0.2, depth
     text = (tmp_path / "lvz" / "lvz_test.md").read_text()
     assert "no head wave at its top" in text and "reflections from its base" in text
     assert "first arrivals only" not in text
@@ -314,6 +316,8 @@ def test_lvz_with_first_arrivals_only_is_prior_driven(tmp_path):
     assert "verdict is driven by the prior" in out["markdown"]
     # no data can favour the monotone model by more than the cap
     assert -t["log_bayes_factor"] <= t["log_cap_monotone"] + 3 * t["log_bayes_factor_error"]
+    # unseen, the slower layer's delay is explained by a deeper refractor: interface 2 (true depth 10 m)
+    # comes out deeper (Telford et al. 1990, from memory)
     depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
-    assert depth["median_monotone"] > depth["median_permissive"]
+    assert depth["median_monotone"] > 10.0 + 2 * depth["posterior_sd"], depth
     assert t["one_run_agrees_with_two_runs"]
