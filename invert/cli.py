@@ -1,4 +1,4 @@
-"""Command line: ``invert run | check | synth | report``."""
+"""Command line: ``invert run | check | synth | report | compare | lvz-test``."""
 
 from __future__ import annotations
 
@@ -28,14 +28,15 @@ def _cmd_run(args) -> int:
 
 def _cmd_check(args) -> int:
     from .config import load_config
-    from .data import read_picks
     from .problem import build_problem
-    from .run import data_checks
+    from .run import data_checks, load_picks
 
     config = load_config(args.config)
-    picks = read_picks(config.picks, config.sources, config.receivers)
+    picks, kept = load_picks(config)
     print(f"Run description {config.path}: '{config.title}', units {config.length_unit} and {config.velocity_unit}")
     print(f"Data: {picks.describe()}")
+    if kept:
+        print(kept)
     for msg in data_checks(picks):
         print(msg)
     problem = build_problem(config, picks)
@@ -46,9 +47,10 @@ def _cmd_check(args) -> int:
     print(f"Pointwise log likelihood stored per {problem.pointwise_kind}.")
     from .run import classic_start
 
+    reasons: list[str] = []
     try:
-        if classic_start(problem, quiet=False) is None:
-            print("(no intercept-time estimate: it needs P first arrivals with surface source and receivers)")
+        if classic_start(problem, quiet=False, reasons=reasons) is None:
+            print(f"({reasons[0] if reasons else 'no intercept-time estimate for these data'})")
     except (ValueError, RuntimeError) as exc:
         print(f"(no intercept-time estimate: {exc})")
     print("Everything reads and checks out; start the inversion with: invert run", args.config)
@@ -64,8 +66,13 @@ def _cmd_synth(args) -> int:
 
 
 def _cmd_report(args) -> int:
-    from .report import write_report
+    from .report import comparison_kind, write_comparison_report, write_report
 
+    if comparison_kind(args.run_dir) is not None:  # a folder of 'invert compare' or 'invert lvz-test'
+        html = write_comparison_report(Path(args.run_dir), png=args.png)
+        print(f"Report written to {html} (open it in a browser; it works offline)")
+        print(CAUTION)
+        return 0
     html = write_report(Path(args.run_dir), png=args.png, bedrock_velocity=args.bedrock_vs,
                         site_classes=args.site_classes)
     print(f"Report written to {html} (open it in a browser; it works offline)")
@@ -107,10 +114,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("spec", help="synthetic-survey description (TOML)")
     s.set_defaults(func=_cmd_synth)
 
-    rp = sub.add_parser("report", help="write the HTML and Markdown report of a finished run",
+    rp = sub.add_parser("report", help="write the HTML and Markdown report of a finished run or comparison",
                         description="Summaries, derived quantities, flags and figures of the run in RUN_DIR as "
-                                    "one self-contained HTML file (report.html) and a Markdown summary.")
-    rp.add_argument("run_dir", help="output folder of 'invert run'")
+                                    "one self-contained HTML file (report.html) and a Markdown summary. Given the "
+                                    "folder of 'invert compare' or 'invert lvz-test', the report shows the "
+                                    "comparison instead (--png applies; the other options do not).")
+    rp.add_argument("run_dir", help="output folder of 'invert run', 'invert compare' or 'invert lvz-test'")
     rp.add_argument("--png", action="store_true", help="also keep every figure as a PNG file in RUN_DIR/figures")
     rp.add_argument("--bedrock-vs", type=float, default=760.0, metavar="VS",
                     help="S velocity [m/s] whose depth is reported as depth to bedrock-like material (default 760)")

@@ -92,6 +92,7 @@ class RunConfig:
     output: Path
     truth: dict = field(default_factory=dict)
     raw: dict = field(default_factory=dict)
+    waves: tuple[str, ...] | None = None  # [data] waves: keep only these waves' picks (None: all)
 
     @property
     def length_unit(self) -> str:
@@ -105,7 +106,7 @@ class RunConfig:
 _TOP_KEYS = {"title", "units", "prior_file", "data", "model", "prior", "constraints", "noise", "nuisance",
              "sampler", "output", "truth"}
 _SECTION_KEYS = {
-    "data": {"picks", "sources", "receivers"},
+    "data": {"picks", "sources", "receivers", "waves"},
     "model": {"layers", "gradient_layers", "vpvs_mode", "depth_parameter", "fluid_layers", "geometry",
               "planet_radius", "max_diffraction"},
     "noise": {"model", "scale", "scale_prior", "outlier_fraction", "outlier_sigma", "dof"},
@@ -138,6 +139,32 @@ def _get(path, section: str, table: dict, key: str, kind, default=None, *, requi
     if not ok or (check is not None and not check(value)):
         raise ConfigError(path, section, f"{key} = {value!r}: expected {expect or kind.__name__}")
     return value
+
+
+#: Wave names the ``[data] waves`` key accepts (as in the picks file's ``wave`` column).
+WAVE_NAMES = ("P", "S")
+
+
+def _waves(path, data: dict) -> tuple[str, ...] | None:
+    """``[data] waves``: the waves whose picks are kept, upper case, in the given order (None: all)."""
+    if "waves" not in data:
+        return None
+    value = data["waves"]
+    expect = 'a list of wave names from "P" and "S", for instance waves = ["P"]'
+    if isinstance(value, str):
+        raise ConfigError(path, "data", f"waves = {value!r}: expected {expect} (square brackets)")
+    if not isinstance(value, list) or not value or not all(isinstance(w, str) for w in value):
+        raise ConfigError(path, "data", f"waves = {value!r}: expected {expect}")
+    out = []
+    for w in value:
+        name = w.strip().upper()
+        if name not in WAVE_NAMES:
+            raise ConfigError(path, "data", f"waves = {value!r}: unknown wave {w!r}; the picks' wave column "
+                                            f"holds only {' and '.join(WAVE_NAMES)}, so use names from those")
+        if name in out:
+            raise ConfigError(path, "data", f"waves = {value!r}: wave {name!r} is listed twice")
+        out.append(name)
+    return tuple(out)
 
 
 def _path(base: Path, value: str | None) -> Path | None:
@@ -209,6 +236,7 @@ def load_config(path) -> RunConfig:
     if (sources is None) != (receivers is None):
         raise ConfigError(path, "data", "give both 'sources' and 'receivers' tables, or neither "
                                         "(then the picks file carries distance and depths)")
+    waves = _waves(path, data)
 
     tmpl = template.get("template", {})
     from_template = {k: v for k, v in (("vpvs_mode", tmpl.get("vpvs_mode")),
@@ -317,4 +345,4 @@ def load_config(path) -> RunConfig:
         raise ConfigError(path, "truth", "expected parameter = number entries (the true model of synthetic data)")
     return RunConfig(path=path, title=title, units=units, picks=picks, sources=sources, receivers=receivers,
                      layers=layers, prior=prior, constraints=constraints, noise=noise, nuisance=nuisance,
-                     sampler=sampler, output=folder, truth=dict(truth), raw=raw)
+                     sampler=sampler, output=folder, truth=dict(truth), raw=raw, waves=waves)

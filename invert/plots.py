@@ -257,6 +257,76 @@ def _pick_groups(n: int, source, wave, branch) -> tuple[list, np.ndarray, np.nda
     return keys, src, wav, brn
 
 
+def _spans_within(values: np.ndarray, groups: np.ndarray) -> float:
+    """Sum over groups of (max - min) of ``values`` inside each group."""
+    total = 0.0
+    for g in np.unique(groups):
+        v = values[groups == g]
+        v = v[np.isfinite(v)]
+        if v.size:
+            total += float(v.max() - v.min())
+    return total
+
+
+def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiver=None,
+                  length_unit: str = "m") -> tuple[np.ndarray, str, str]:
+    """What the travel-time figures plot the picks against, chosen from the survey layout.
+
+    Within one source's picks, receivers strung down a hole change depth more than
+    horizontal distance; within one receiver's picks, sources fired down a hole do
+    the same, and the depths spread over more than the typical (median) horizontal
+    distance. The picks are then plotted against the depth that varies:
+
+    * receivers down a hole (depth varies more than horizontal distance within the
+      picks of each source): receiver depth;
+    * sources down a hole (likewise within the picks of each receiver): source depth;
+    * both (for instance hole to hole): straight-line source-receiver distance
+      sqrt(x^2 + (z_r - z_s)^2);
+    * otherwise (lines and networks at or near the surface): horizontal distance.
+
+    Parameters
+    ----------
+    distance, source_depth, receiver_depth : (P,) arrays
+        Horizontal source-receiver distance and the two depths of each pick [length].
+    source, receiver : (P,) label arrays, optional
+        Source and receiver of each pick (default: all picks from one source, or at
+        one receiver).
+    length_unit : str
+
+    Returns
+    -------
+    values : (P,) array
+        The abscissa of each pick [length].
+    label : str
+        Axis label with unit.
+    kind : str
+        ``"horizontal"``, ``"receiver_depth"``, ``"source_depth"`` or ``"straight_line"``.
+    """
+    x = np.asarray(distance, dtype=float)
+    zs = np.broadcast_to(np.asarray(source_depth, dtype=float), x.shape)
+    zr = np.broadcast_to(np.asarray(receiver_depth, dtype=float), x.shape)
+    src = np.asarray(source if source is not None else np.zeros(x.size)).astype(str)
+    rec = np.asarray(receiver if receiver is not None else np.zeros(x.size)).astype(str)
+    if src.shape != x.shape or rec.shape != x.shape:
+        raise ValueError(f"source, receiver: expected {x.size} labels (one per pick), got shapes {src.shape}, "
+                         f"{rec.shape}")
+    typical = float(np.nanmedian(x)) if np.isfinite(x).any() else 0.0
+
+    def spread(z):
+        return float(np.nanmax(z) - np.nanmin(z)) if np.isfinite(z).any() else 0.0
+
+    down_receivers = _spans_within(zr, src) > _spans_within(x, src) and spread(zr) > typical
+    down_sources = _spans_within(zs, rec) > _spans_within(x, rec) and spread(zs) > typical
+    if down_receivers and not down_sources:
+        return zr.copy(), f"receiver depth [{length_unit}]", "receiver_depth"
+    if down_sources and not down_receivers:
+        return zs.copy(), f"source depth [{length_unit}]", "source_depth"
+    if down_sources and down_receivers:
+        return (np.hypot(x, zr - zs), f"straight-line source–receiver distance [{length_unit}]",
+                "straight_line")
+    return x.copy(), f"horizontal source–receiver distance [{length_unit}]", "horizontal"
+
+
 def _pick_arrays(distance, observed, sigma, band_times):
     x = np.asarray(distance, dtype=float)
     y = np.asarray(observed, dtype=float)
@@ -303,13 +373,14 @@ def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_lab
 
 def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, wave=None, branch=None,
                          replicated=None, outlier_probability=None, band: float = 0.9,
-                         length_unit: str = "m", path=None) -> Figure:
-    """Picks against distance with the posterior predictive band and residuals.
+                         length_unit: str = "m", x_label: str | None = None, path=None) -> Figure:
+    """Picks against distance (or depth) with the posterior predictive band and residuals.
 
     Parameters
     ----------
     distance : (P,) array
-        Source–receiver distance of each pick [length].
+        Abscissa of each pick [length]: source–receiver distance, or the receiver
+        or source depth for borehole surveys (see :func:`pick_abscissa`).
     observed, sigma : (P,) arrays
         Picked times and their standard deviations [s].
     predicted : (S, P) array
@@ -326,6 +397,8 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
     band : float
         Probability of the central band (default 0.9).
     length_unit : str
+    x_label : str, optional
+        Label of the abscissa with its unit (default: source–receiver distance).
     path : str or Path, optional
 
     Returns
@@ -366,7 +439,7 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
                               label=f"outlier probability > 0.5 ({_count(int(out.sum()), 'pick')})"))
     ax.set_ylabel("travel time [s]")
     ax_r.set_ylabel("residual [ms]\n(observed − median predicted)", fontsize=9)
-    ax_r.set_xlabel(f"source–receiver distance [{length_unit}]")
+    ax_r.set_xlabel(x_label or f"source–receiver distance [{length_unit}]")
     ax.legend(handles=handles, loc="upper left", fontsize=8, ncol=2 if len(handles) > 6 else 1)
     ax.set_title("Travel-time fit")
     fig.tight_layout()
@@ -374,7 +447,8 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
 
 
 def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=None, wave=None,
-                          branch=None, band: float = 0.95, length_unit: str = "m", path=None) -> Figure:
+                          branch=None, band: float = 0.95, length_unit: str = "m", x_label: str | None = None,
+                          path=None) -> Figure:
     """Picks over the travel times predicted by models drawn from the prior.
 
     A prior that covers the data leaves the picks inside the band; picks far
@@ -383,13 +457,16 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
     Parameters
     ----------
     distance, observed, sigma : (P,) arrays
-        Distance [length], picked times and standard deviations [s].
+        Abscissa (distance, or depth for borehole surveys) [length], picked times and
+        standard deviations [s].
     prior_predicted : (S, P) array
         Times of prior models [s]; absent arrivals (inf) are ignored.
     source, wave, branch : (P,) label arrays, optional
     band : float
         Probability of the central band (default 0.95).
     length_unit : str
+    x_label : str, optional
+        Label of the abscissa with its unit (default: source–receiver distance).
     path : str or Path, optional
     """
     x, y, s, t = _pick_arrays(distance, observed, sigma, prior_predicted)
@@ -403,7 +480,7 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
     absent = np.mean(~np.isfinite(t))
     if absent > 0:
         handles.append(Patch(color="none", label=f"{absent:.0%} of prior arrivals absent (not shown)"))
-    ax.set_xlabel(f"source–receiver distance [{length_unit}]")
+    ax.set_xlabel(x_label or f"source–receiver distance [{length_unit}]")
     ax.set_ylabel("travel time [s]")
     ax.legend(handles=handles, loc="upper left", fontsize=8)
     ax.set_title(f"Prior predictive travel times ({t.shape[0]} prior models)")

@@ -644,8 +644,23 @@ _GROUP_WORDS = {
 }
 
 
-def residual_groups(residuals, groups: Mapping[str, Sequence], sigma=None, *, threshold: float = 2.0
-                    ) -> list[dict]:
+def bonferroni_threshold(n_tests: int, family_level: float = 0.05) -> float:
+    """Two-sided normal threshold |z| for ``n_tests`` tests at family-wise level ``family_level``.
+
+    Bonferroni correction (Dunn, J. Am. Stat. Assoc. 56, 1961): each test is run at
+    level ``family_level / n_tests``, so the chance that any of them fires when no
+    group is offset is at most ``family_level`` whatever their dependence.
+    Returns ``Phi^-1(1 - family_level / (2 n_tests))``; 1.96 for one test.
+    """
+    from scipy.stats import norm
+
+    if not 0 < family_level < 1:
+        raise ValueError(f"family_level: expected a probability in (0, 1), got {family_level}")
+    return float(norm.isf(family_level / (2.0 * max(int(n_tests), 1))))
+
+
+def residual_groups(residuals, groups: Mapping[str, Sequence], sigma=None, *, threshold: float | None = None,
+                    family_level: float = 0.05) -> list[dict]:
     """Mean and spread of the residuals of each group of picks.
 
     Parameters
@@ -658,14 +673,21 @@ def residual_groups(residuals, groups: Mapping[str, Sequence], sigma=None, *, th
         Pick standard deviations [s]. With them the standard error of a group
         mean is sqrt(sum sigma_i^2) / n; without them it is sd / sqrt(n) over
         the picks of the group (undefined for a single pick).
-    threshold : float
+    threshold : float, optional
         A group is ``systematic`` when |mean| exceeds this many standard errors.
+        Default: the Bonferroni threshold (:func:`bonferroni_threshold`) for the
+        number of groups tested (those with a defined standard error) at
+        ``family_level``, so that testing many sources and receivers does not
+        flag some of them by chance alone.
+    family_level : float
+        Family-wise two-sided level of the default threshold (0.05).
 
     Returns
     -------
     list of dict
         Keys ``group, label, n_picks, mean_s, sd_s, rms_s, standard_error_s,
-        z, systematic``; statistics use the posterior-mean residual of each pick.
+        z, systematic, threshold, groups_tested``; statistics use the
+        posterior-mean residual of each pick.
     """
     r = np.asarray(residuals, dtype=float)
     if r.ndim != 2:
@@ -694,8 +716,13 @@ def residual_groups(residuals, groups: Mapping[str, Sequence], sigma=None, *, th
             se = float(np.sqrt(np.sum(s[sel] ** 2)) / n) if s is not None else sd / math.sqrt(n)
             z = mean / se if se > 0 else math.nan
             rows.append({"group": key, "label": str(value), "n_picks": n, "mean_s": mean, "sd_s": sd,
-                         "rms_s": float(np.sqrt(np.mean(x * x))), "standard_error_s": se, "z": z,
-                         "systematic": bool(abs(z) > threshold)})
+                         "rms_s": float(np.sqrt(np.mean(x * x))), "standard_error_s": se, "z": z})
+    tested = sum(math.isfinite(row["z"]) for row in rows)
+    limit = bonferroni_threshold(tested, family_level) if threshold is None else float(threshold)
+    for row in rows:
+        row["systematic"] = bool(abs(row["z"]) > limit)
+        row["threshold"] = limit
+        row["groups_tested"] = tested
     return rows
 
 
@@ -708,8 +735,11 @@ def describe_systematic_residuals(rows: Sequence[dict]) -> list[str]:
         who, hint = _GROUP_WORDS.get(row["group"], (f"picks with {row['group']} = {{}}", "a missing term?"))
         mean = row["mean_s"]
         way = "late" if mean > 0 else "early"
+        limit = row.get("threshold")
+        beyond = (f", beyond the {limit:.2f} allowed for {row['groups_tested']} groups tested"
+                  if limit is not None and row.get("groups_tested") else "")
         out.append(f"{who.format(row['label'])} are {way} by {_format_time(mean)} on average "
-                   f"({abs(row['z']):.1f} standard errors, {row['n_picks']} picks): {hint}")
+                   f"({abs(row['z']):.1f} standard errors{beyond}; {row['n_picks']} picks): {hint}")
     return out
 
 

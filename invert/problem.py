@@ -409,12 +409,35 @@ class Problem:
         return out
 
 
-def build_problem(config: RunConfig, picks: PickSet | None = None) -> Problem:
-    """Problem of a run description (reads the picks unless given)."""
+def select_waves(config: RunConfig, picks: PickSet) -> PickSet:
+    """The picks of the waves listed in ``[data] waves`` (all picks when the key is absent).
+
+    Raises ConfigError, naming the run description, the key and the picks file,
+    when a listed wave has no pick in the file.
+    """
+    waves = getattr(config, "waves", None)
+    if not waves:
+        return picks
+    present = set(np.asarray(picks.wave).astype(str))
+    missing = [w for w in waves if w not in present]
+    if missing:
+        raise ConfigError(config.path, "data", f"waves = {list(waves)!r}: {picks.path} has no {' or '.join(missing)} "
+                                               f"picks (it holds {' and '.join(sorted(present)) or 'none'}); "
+                                               "list only waves the picks file contains")
+    keep = np.isin(np.asarray(picks.wave).astype(str), list(waves))
+    return picks if keep.all() else picks.subset(keep)
+
+
+def read_run_picks(config: RunConfig) -> PickSet:
+    """The picks of a run description: its data files read, then ``[data] waves`` applied."""
     from .data import read_picks
 
-    if picks is None:
-        picks = read_picks(config.picks, config.sources, config.receivers)
+    return select_waves(config, read_picks(config.picks, config.sources, config.receivers))
+
+
+def build_problem(config: RunConfig, picks: PickSet | None = None) -> Problem:
+    """Problem of a run description (reads the picks unless given; ``[data] waves`` applied)."""
+    picks = read_run_picks(config) if picks is None else select_waves(config, picks)
     table = {"prior": config.prior}
     if config.constraints:
         table["constraints"] = config.constraints

@@ -521,6 +521,9 @@ class _Fit:
     outlier: np.ndarray | None
     origin_fitted: bool
     n_dropped: int
+    abscissa: np.ndarray | None = None  # (P,) what the figures plot picks against (distance or depth)
+    abscissa_label: str = ""            # its axis label with unit
+    abscissa_kind: str = "horizontal"   # see plots.pick_abscissa
 
 
 def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
@@ -550,13 +553,18 @@ def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
     origin = origin_src[:, src]
     predicted = pred + origin
     replicated = predicted + rng.standard_normal(pred.shape) * sigma
-    x, _, _ = problem.geometry(theta)
-    distance = np.median(x, axis=0) if np.ndim(x) == 2 else np.asarray(x, dtype=float)
+    x, zs, zr = problem.geometry(theta)
+    distance, zs, zr = (np.median(v, axis=0) if np.ndim(v) == 2 else np.asarray(v, dtype=float)
+                        for v in (x, zs, zr))
+    from .plots import pick_abscissa
+
+    abscissa, label, kind = pick_abscissa(distance, zs, zr, source=picks.source_id, receiver=picks.receiver_id,
+                                          length_unit=an.length)
     outlier = problem.outlier_probability(theta)
     if outlier is not None:
         outlier = np.nanmean(outlier, axis=0)
     return _Fit(predicted, replicated, time[None, :] - predicted, sigma, origin, distance, outlier,
-                bool((~known).any()), int((~good).sum()))
+                bool((~known).any()), int((~good).sum()), abscissa, label, kind)
 
 
 # =================================================================== sections
@@ -575,6 +583,9 @@ def _section_run(an: _Analysis) -> list:
     files = [f"picks: {cfg.picks}"]
     if cfg.sources is not None:
         files += [f"sources: {cfg.sources}", f"receivers: {cfg.receivers}"]
+    if getattr(cfg, "waves", None):
+        files.append(f"waves kept ([data] waves): {', '.join(cfg.waves)}; picks of other waves in the file are "
+                     "left out of this run")
     described = [s for s in picks.describe().splitlines() if not s.startswith("Picks by wave and branch")]
     out.append(_Items(files + described))
     rows = []
@@ -759,14 +770,18 @@ def _section_derived(an: _Analysis, fwd: dict, bedrock_velocity: float, site_cla
         units[name] = an.length
         if tm is not None:
             truth[name] = float(post.depth_above_interface(tm, k)[0])
-    waves = ["P", "S"] if (an.s_model and an.n_s_picks) else ["P"]
+    # two-way times only for the waves in the data (an S-only run says nothing new about P times);
+    # ms for runs in metres, s for runs in kilometres
+    picked = set(np.asarray(problem.picks.wave).astype(str))
+    waves = [w for w in ("P", "S") if w in picked and (w == "P" or an.s_model)]
+    tw_scale, tw_unit = (1e3, "ms") if an.length == "m" else (1.0, "s")
     for wave in waves:
         for k in range(1, n + 1):
             name = f"{wave} two-way time to interface {k}"
-            samples[name] = 1e3 * _with_warnings(an.notes, post.two_way_time, model, k, wave)
-            units[name] = "ms"
+            samples[name] = tw_scale * _with_warnings(an.notes, post.two_way_time, model, k, wave)
+            units[name] = tw_unit
             if tm is not None:
-                truth[name] = 1e3 * float(_with_warnings([], post.two_way_time, tm, k, wave)[0])
+                truth[name] = tw_scale * float(_with_warnings([], post.two_way_time, tm, k, wave)[0])
     site_work = an.length == "m" and an.s_model
     vs30 = None
     if site_work:
@@ -789,7 +804,8 @@ def _section_derived(an: _Analysis, fwd: dict, bedrock_velocity: float, site_cla
     header, rows = _summary_rows(an, samples, units, truth, partial)
     out.append(_Table(header, rows,
                       f"From {len(an.theta_model)} evenly spread posterior draws. Depths are below the datum; "
-                      "two-way times are vertical times from the datum down to the interface and back."
+                      f"two-way times (in {tw_unit}, for the waves picked) are vertical times from the datum down to "
+                      "the interface and back."
                       + (" Vs30 = 30 m / (vertical S travel time over the top 30 m)." if site_work else "")))
     if site_work:
         flags = []
@@ -937,8 +953,8 @@ def _section_flags(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
     outside = fwd.get("prior_outside")
     if outside is not None and outside.any():
         flags.append(f"{int(outside.sum())} of {outside.size} picks lie outside the central 95 % of travel times "
-                     "predicted by the prior: the prior may exclude structure the data need (see the prior "
-                     "predictive figure).")
+                     f"predicted by the {fwd['prior_times'].shape[0]} valid prior models: the prior may exclude "
+                     "structure the data need (see the prior predictive figure). " + _prior_invalid_words(fwd))
     if flags:
         out.append(_Items([_sentence(f) for f in flags]))
     else:
@@ -964,8 +980,13 @@ def _section_flags(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
         rows = [[r["group"], r["label"], str(r["n_picks"]), f"{round(r['mean_s'] * 1e3, 2) + 0.0:+.2f}",
                  f"{r['rms_s'] * 1e3:.2f}", f"{round(r['z'], 1) + 0.0:+.1f}", "yes" if r["systematic"] else ""]
                 for r in groups if r["group"] in ("wave", "branch", "source") or r["systematic"]]
+        limit = groups[0]["threshold"] if groups else post.bonferroni_threshold(1)
+        tested = groups[0]["groups_tested"] if groups else 0
         caption = ("Residual = observed − predicted (positive: the pick is late), averaged over the draws; a group "
-                   "is systematic when its mean exceeds 2 standard errors. Receivers are listed only when flagged.")
+                   f"is systematic when its mean exceeds {limit:.2f} standard errors: the two-sided 5 % level with "
+                   f"a Bonferroni correction for the {tested} groups tested (sources, receivers, waves and "
+                   "branches; Dunn, J. Am. Stat. Assoc. 56, 1961), so that with pick errors as stated all groups "
+                   "together raise a false flag at most 5 % of the time. Receivers are listed only when flagged.")
         out.append(_Table(["group", "label", "picks", "mean residual [ms]", "rms [ms]", "mean / standard error",
                            "systematic"], rows, caption, "llrrrrl"))
         words = [f"Posterior predictive check (chi-square discrepancy; Gelman et al., Bayesian Data Analysis, 3rd "
@@ -1022,6 +1043,21 @@ def _chains_for_traces(an: _Analysis):
     return x.reshape(e, w, x.shape[1], -1).transpose(0, 2, 1, 3), None, " (kept steps only: no checkpoint file)"
 
 
+def _abscissa_words(fit: _Fit) -> str:
+    """What the travel-time figures plot the picks against, in words (plots.pick_abscissa)."""
+    return {"receiver_depth": "receiver depth (receivers down a hole; horizontal source–receiver distance "
+                              f"{_range_words(fit.distance)})",
+            "source_depth": "source depth (sources down a hole; horizontal source–receiver distance "
+                            f"{_range_words(fit.distance)})",
+            "straight_line": "the straight-line source–receiver distance (sources and receivers at depth)",
+            }.get(fit.abscissa_kind, "horizontal source–receiver distance")
+
+
+def _range_words(x: np.ndarray) -> str:
+    lo, hi = float(np.nanmin(x)), float(np.nanmax(x))
+    return f"{lo:.3g}" if np.isclose(lo, hi) else f"{lo:.3g} – {hi:.3g}"
+
+
 def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
     from . import plots
 
@@ -1055,11 +1091,12 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
     if fit is not None:
         o_med = np.median(fit.origin, axis=0)
         obs_tt = np.asarray(picks.time, dtype=float) - o_med
-        fig = plots.plot_travel_time_fit(fit.distance, obs_tt, np.asarray(picks.sigma, dtype=float),
+        fig = plots.plot_travel_time_fit(fit.abscissa, obs_tt, np.asarray(picks.sigma, dtype=float),
                                          fit.predicted - o_med, source=picks.source_id, wave=picks.wave,
                                          branch=picks.branch, replicated=fit.replicated - o_med,
-                                         outlier_probability=fit.outlier, length_unit=an.length)
-        cap = (f"Picks (± 1 sd) against source–receiver distance, with the central 90 % of picks replicated from "
+                                         outlier_probability=fit.outlier, length_unit=an.length,
+                                         x_label=fit.abscissa_label)
+        cap = (f"Picks (± 1 sd) against {_abscissa_words(fit)}, with the central 90 % of picks replicated from "
                f"{fit.predicted.shape[0]} posterior draws (prediction plus pick noise). Colour: source; marker: "
                "wave. Lower panel: observed minus median predicted time in ms.")
         if fit.origin_fitted:
@@ -1095,12 +1132,13 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
     if pp is not None and fit is not None:
         o_med = np.median(fit.origin, axis=0)
         obs_tt = np.asarray(picks.time, dtype=float) - o_med
-        fig = plots.plot_prior_predictive(fit.distance, obs_tt, np.asarray(picks.sigma, dtype=float), pp,
+        fig = plots.plot_prior_predictive(fit.abscissa, obs_tt, np.asarray(picks.sigma, dtype=float), pp,
                                           source=picks.source_id, wave=picks.wave, branch=picks.branch,
-                                          length_unit=an.length)
-        add("prior_predictive", fig, f"Travel times of {pp.shape[0]} models drawn from the prior (central 95 %), "
-                                     "with the picks. Picks far outside the band point to a prior that excludes the "
-                                     "structure the data need.")
+                                          length_unit=an.length, x_label=fit.abscissa_label)
+        cap = (f"Travel times of {pp.shape[0]} models drawn from the prior (central 95 %), with the picks, against "
+               f"{_abscissa_words(fit)}. Picks far outside the band point to a prior that excludes the structure the "
+               "data need. " + _prior_invalid_words(fwd))
+        add("prior_predictive", fig, cap.strip())
     # traces and convergence
     chains, burn, where = _chains_for_traces(an)
     k = min(chains.shape[-1], MAX_PANELS)
@@ -1142,9 +1180,24 @@ def _forward_quantities(an: _Analysis, bedrock_velocity: float) -> dict:
     if prior is not None and all(n in prior for n in problem.names):
         theta = np.column_stack([np.asarray(prior[n], dtype=float).reshape(-1) for n in problem.names])
         theta = theta[_evenly(len(theta), PRIOR_PREDICTIVE_DRAWS)]
-        times, _ = problem.travel_times(theta)
-        out["prior_times"] = times
+        times, valid = problem.travel_times(theta)
+        # draws the prior allows but that make no valid layer model (e.g. Vp/Vs not above sqrt(4/3)) have no
+        # arrivals at all; they are left out and counted, not mistaken for missing arrivals
+        out["prior_draws"] = int(valid.size)
+        out["prior_invalid"] = int((~valid).sum())
+        if valid.any():
+            out["prior_times"] = times[valid]
     return out
+
+
+def _prior_invalid_words(fwd: dict) -> str:
+    """Sentence on prior draws left out of the prior predictive because they are not valid models."""
+    bad, total = fwd.get("prior_invalid", 0), fwd.get("prior_draws", 0)
+    if not bad:
+        return ""
+    return (f"{bad} of {total} prior draws give no valid layer model (for instance Vp/Vs not above sqrt(4/3) in "
+            "some layer, which the forward model rejects) and are left out; they are not counted as missing "
+            "arrivals.")
 
 
 def _prior_outside(fwd: dict, fit: _Fit | None, picks) -> np.ndarray | None:
@@ -1336,3 +1389,507 @@ def write_report(run_dir, png: bool = False, *, bedrock_velocity: float = BEDROC
     write_atomic(run_dir / "report.md", _render_markdown(title, blocks, meta, verdict, png))
     write_atomic(run_dir / "report.html", _render_html(title, blocks, meta, verdict))
     return run_dir / "report.html"
+
+
+# =================================================================== comparison and low-velocity-zone folders
+#: Section anchors and headings of the report of an ``invert compare`` folder.
+COMPARISON_SECTIONS = (
+    ("compared", "What was compared"),
+    ("evidence", "Evidence and model probabilities"),
+    ("layers", "How many layers?"),
+    ("average", "Model-averaged velocity against depth"),
+    ("agreement", "Do the two estimators agree?"),
+    ("notes", "Notes"),
+    ("cautions", "Cautions"),
+)
+
+#: Section anchors and headings of the report of an ``invert lvz-test`` folder.
+LVZ_SECTIONS = (
+    ("tested", "What was tested"),
+    ("verdict", "Bayes factors"),
+    ("layers", "Each slower layer tested"),
+    ("notes", "Notes"),
+    ("cautions", "Cautions"),
+)
+
+COMPARISON_CAUTIONS = (
+    "Evidences and Bayes factors depend on the priors: a wider prior range makes a model pay more for its "
+    "parameters (Occam's razor), so the verdict is a statement about the data and the priors together. Model "
+    "probabilities are relative to the candidates compared: a model nobody proposed gets none. Every log Z is an "
+    "estimate with a stated error, propagated into the probability ranges; when the two estimators disagree, "
+    "neither value is trustworthy until a longer run settles it. The model is one-dimensional (flat, laterally "
+    "uniform layers), and the cautions of the run report apply to every candidate. Engineering decisions follow "
+    "the local code and the judgement of licensed professionals."
+)
+
+
+def comparison_kind(folder) -> str | None:
+    """``'comparison'`` or ``'lvz'`` if ``folder`` was written by ``invert compare`` or ``invert lvz-test``, else None."""
+    folder = Path(folder)
+    if (folder / "comparison.json").is_file():
+        return "comparison"
+    if (folder / "lvz_test.json").is_file():
+        return "lvz"
+    return None
+
+
+def _f(x, digits: int = 2) -> str:
+    """Fixed decimals for log evidences and their differences (n/a when missing)."""
+    if x is None:
+        return "n/a"
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if not math.isfinite(x):
+        return _num(x)
+    return f"{x:.{digits}f}".replace("-", "−")
+
+
+def _pm(value, error, digits: int = 2) -> str:
+    if value is None:
+        return "—"
+    return f"{_f(value, digits)} ± {_f(error, digits)}"
+
+
+def _estimate_rows(estimates: dict) -> list:
+    """Table rows per model and estimator: method, log Z, error, likelihood calls, seconds, settings."""
+    rows = []
+    for model, per in estimates.items():
+        for key in ("nested", "stepping"):
+            r = per.get(key)
+            if r is None:
+                continue
+            d = r.get("details", {})
+            if key == "nested":
+                setting = f"{d.get('live_points', '?')} live points, information {_f(d.get('information_nats'), 1)} nats"
+            else:
+                setting = (f"{len(d.get('ladder', [])) - 1} rungs × ({d.get('burn', '?')} + {d.get('steps', '?')}) "
+                           f"steps, {d.get('walkers', '?')} walkers")
+            rows.append([model, r["method"], _pm(r["log_z"], r["log_z_error"], 3), f"{int(r['n_calls']):,}",
+                         _num(r["seconds"], 3), setting])
+    return rows
+
+
+def _comparison_figures(doc: dict, folder: Path) -> list:
+    """Figures of a comparison: log Z per model and estimator, the layer-count posterior, the averaged density."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    figures = []
+    models = doc["models"]
+    names = [m["model"] for m in models]
+    # log Z by estimator, relative to the best model's combined value
+    best = max(m["log_z"] for m in models)
+    fig, ax = plt.subplots(figsize=(7.0, 0.6 * len(models) + 1.8), dpi=110)
+    y = np.arange(len(models))
+    for off, key, label, colour in ((-0.18, "log_z_nested", "nested sampling", "tab:blue"),
+                                    (0.0, "log_z_stepping_stone", "stepping-stone", "tab:orange"),
+                                    (0.18, "log_z", "used (combined)", "black")):
+        vals = [m.get(key) for m in models]
+        errs = [m.get(key + "_error") for m in models]
+        sel = [i for i, v in enumerate(vals) if v is not None]
+        if sel:
+            ax.errorbar([vals[i] - best for i in sel], y[sel] + off, xerr=[2 * errs[i] for i in sel], fmt="o",
+                        color=colour, ms=4, capsize=3, label=label)
+    ax.set_yticks(y, names)
+    ax.invert_yaxis()
+    ax.axvline(0.0, color="0.6", lw=0.8)
+    for step in (-1.0, -3.0, -5.0):  # Kass & Raftery (1995) steps in ln B (from memory)
+        ax.axvline(step, color="0.85", lw=0.8, ls=":")
+    ax.set_xlabel("log Z − log Z of the best model [nats]; bars ± 2 stated errors; dotted: ln B = −1, −3, −5")
+    ax.legend(fontsize=8, loc="best")
+    fig.tight_layout()
+    figures.append(("log_evidence", "Log evidence of each candidate", fig,
+                    "Each candidate's log evidence by each estimator, relative to the best model's combined value "
+                    "(error bars: twice the stated standard error). Estimates of the same model should overlap; the "
+                    "dotted lines mark where the Bayes factor against the best model reaches e, e³ and e⁵ (the "
+                    "steps of Kass & Raftery's scale in ln B)."))
+    # number of layers
+    lc = doc.get("layer_count", [])
+    if lc:
+        fig, ax = plt.subplots(figsize=(5.5, 3.4), dpi=110)
+        n = [r["layers_with_half_space"] for r in lc]
+        p = [r["posterior_probability"] for r in lc]
+        e = [r["posterior_probability_error"] for r in lc]
+        pr = [r["prior_probability"] for r in lc]
+        x = np.arange(len(lc))
+        ax.bar(x - 0.2, pr, width=0.38, color="0.8", label="prior")
+        ax.bar(x + 0.2, p, width=0.38, color="tab:blue", yerr=e, capsize=4, label="posterior (± 1 sd)")
+        ax.set_xticks(x, [str(v) for v in n])
+        ax.set_xlabel("number of layers, half-space included")
+        ax.set_ylabel("probability")
+        ax.set_ylim(0, 1.05)
+        ax.legend(fontsize=8)
+        fig.tight_layout()
+        figures.append(("layer_count", "Posterior of the number of layers", fig,
+                        "Prior and posterior probability of each number of layers (the half-space counted as a "
+                        "layer), summed over the candidates with that number; error bars propagate the stated log Z "
+                        "errors."))
+    # model-averaged density, redrawn from the CSV files
+    dens = _read_density(folder)
+    if dens is not None:
+        depth, vel, d, q = dens
+        units = doc.get("units", "")
+        fig, ax = plt.subplots(figsize=(5.5, 6.0), dpi=110)
+        peak = np.max(d, axis=1, keepdims=True)
+        shade = np.sqrt(np.divide(d, peak, out=np.zeros_like(d), where=peak > 0))
+        ax.pcolormesh(vel, depth, shade, shading="auto", cmap="Greys", vmin=0.0, vmax=1.0)
+        ax.plot(q[:, 2], depth, color="tab:red", lw=1.3, label="median")
+        ax.plot(q[:, 1], depth, color="tab:red", lw=0.8, ls=":", label="68 % range")
+        ax.plot(q[:, 3], depth, color="tab:red", lw=0.8, ls=":")
+        ax.plot(q[:, 0], depth, color="tab:red", lw=0.8, ls="--", label="95 % range")
+        ax.plot(q[:, 4], depth, color="tab:red", lw=0.8, ls="--")
+        ax.set_ylim(depth[-1], depth[0])
+        ax.set_xlabel("P velocity" + (f" [{units}/s]" if units else ""))
+        ax.set_ylabel("depth" + (f" [{units}]" if units else ""))
+        ax.legend(loc="lower left", fontsize=8)
+        fig.tight_layout()
+        figures.append(("velocity_density", "Model-averaged velocity against depth", fig,
+                        "Every candidate's posterior velocity profile, mixed in proportion to its posterior model "
+                        "probability. Shading: density at each depth relative to that depth's peak (square root, so "
+                        "that faint branches stay visible); red: median and 68 / 95 % ranges of the mixture. Where "
+                        "the candidates put interfaces at different depths the mixture shows each of them."))
+    out = []
+    for key, title, fig, caption in figures:
+        out.append(_Figure(key, title, caption, _png(fig)))
+        plt.close(fig)
+    return out
+
+
+def _read_density(folder: Path):
+    """(depth, velocity, density (Z, V), quantiles (Z, 5)) from velocity_density.csv and velocity_quantiles.csv."""
+    dpath, qpath = folder / "velocity_density.csv", folder / "velocity_quantiles.csv"
+    if not (dpath.is_file() and qpath.is_file()):
+        return None
+    try:
+        raw = np.loadtxt(dpath, delimiter=",", skiprows=1, ndmin=2)
+        q = np.loadtxt(qpath, delimiter=",", skiprows=1, ndmin=2)
+    except ValueError as exc:
+        raise ValueError(f"{dpath} or {qpath}: not the layout written by 'invert compare' ({exc})") from None
+    depth = np.unique(raw[:, 0])
+    vel = np.unique(raw[:, 1])
+    if raw.shape[0] != depth.size * vel.size or q.shape != (depth.size, 6):
+        raise ValueError(f"{dpath}: expected one row per depth and velocity ({depth.size} x {vel.size}) and "
+                         f"{qpath} one row per depth with 5 quantiles")
+    return depth, vel, raw[:, 2].reshape(depth.size, vel.size), q[:, 1:]
+
+
+def _comparison_blocks(doc: dict, folder: Path) -> tuple:
+    models = doc["models"]
+    settings = doc.get("settings", {})
+    blocks = [_Heading(*COMPARISON_SECTIONS[0])]
+    blocks.append(_Para(
+        f"{_plural(len(models), 'candidate parameterisation')} of the same picks, compared by their evidence "
+        "(marginal likelihood): the probability of the data under each model, averaged over its prior. Both "
+        "estimators use the same likelihood and normalised priors as an ordinary run, nuisance parameters "
+        "included. docs/evidence.md describes the method."))
+    est = ", ".join({"nested": "nested sampling", "stepping": "stepping-stone"}.get(e, e)
+                    for e in settings.get("estimators", []))
+    blocks.append(_Para(
+        f"Estimators: {est}. Nested sampling: {settings.get('live_points')} live points "
+        f"({settings.get('proposal')} proposals). Stepping-stone: {settings.get('rungs')} rungs, ladder power "
+        f"{settings.get('ladder_power')}, {settings.get('rung_burn')} discarded + {settings.get('rung_steps')} kept "
+        f"steps per rung. Seed {settings.get('seed')}."))
+    blocks.append(_Table(["model", "estimator", "log Z", "likelihood calls", "time [s]", "settings"],
+                         _estimate_rows(doc.get("estimates", {})), "One row per model and estimator run.",
+                         align="llrrrl"))
+    blocks.append(_Heading(*COMPARISON_SECTIONS[1]))
+    rows = []
+    for m in models:
+        rows.append([m["model"], str(m["layers_above_half_space"] + 1), str(m["free_parameters"]),
+                     _pm(m.get("log_z_nested"), m.get("log_z_nested_error")),
+                     _pm(m.get("log_z_stepping_stone"), m.get("log_z_stepping_stone_error")),
+                     _pm(m["log_z"], m["log_z_error"]), _pm(m["delta_log_z"], m["delta_log_z_error"]),
+                     _num(m["bayes_factor_vs_best"], 3), _pct(m["prior_probability"]),
+                     f"{_pct(m['posterior_probability'])} ({_pct(m['posterior_probability_low95'])} – "
+                     f"{_pct(m['posterior_probability_high95'])})", m["strength"]])
+    blocks.append(_Table(["model", "layers (with half-space)", "free parameters", "log Z nested",
+                          "log Z stepping-stone", "log Z used", "Δ log Z to best", "Bayes factor vs best",
+                          "prior P", "posterior P (95 % range)", "strength against"], rows,
+                         "Natural logs. Δ log Z = ln B against the best model. Strength on the scale of Kass & "
+                         "Raftery (1995), defined on 2 ln B: 0–2 not worth more than a bare mention, 2–6 positive, "
+                         "6–10 strong, above 10 very strong (in ln B about 1, 3 and 5). Posterior model "
+                         "probabilities use the stated prior weights; their 95 % ranges propagate the log Z errors.",
+                         align="lrrrrrrrrrl"))
+    order = sorted(models, key=lambda m: -m["posterior_probability"])
+    best, second = order[0], order[1]
+    ln_b = best["log_z"] - second["log_z"]
+    err = math.hypot(best["log_z_error"], second["log_z_error"])
+    blocks.append(_Para(
+        f"Best supported: {best['model']} (posterior probability {_pct(best['posterior_probability'])}). Against "
+        f"the runner-up, {second['model']}, ln B = {_pm(ln_b, err)}: {second['strength']}."
+        + (" The difference is within twice its error: the data do not separate these two." if abs(ln_b) < 2 * err
+           else ""), "note"))
+    figures = _comparison_figures(doc, folder)
+    by_key = {f.key: f for f in figures}
+    blocks.append(by_key["log_evidence"])
+    blocks.append(_Heading(*COMPARISON_SECTIONS[2]))
+    lc = doc.get("layer_count", [])
+    blocks.append(_Table(["layers (with half-space)", "layers over the half-space", "prior P", "posterior P",
+                          "models"],
+                         [[str(r["layers_with_half_space"]), str(r["layers_above_half_space"]),
+                           _pct(r["prior_probability"]),
+                           f"{_pct(r['posterior_probability'])} ± {_pct(r['posterior_probability_error'])}",
+                           r["models"]] for r in lc],
+                         "Posterior of the number of layers: the probabilities of the candidates with that number, "
+                         "summed.", align="rrrrl"))
+    if "layer_count" in by_key:
+        blocks.append(by_key["layer_count"])
+    blocks.append(_Heading(*COMPARISON_SECTIONS[3]))
+    if "velocity_density" in by_key:
+        blocks.append(_Para("Each candidate's posterior draws, mixed by its posterior probability; the numbers are "
+                            "in velocity_density.csv and velocity_quantiles.csv."))
+        blocks.append(by_key["velocity_density"])
+    else:
+        blocks.append(_Para("No model-averaged density in this folder (velocity_density.csv missing); see the "
+                            "notes.", "warn"))
+    blocks.append(_Heading(*COMPARISON_SECTIONS[4]))
+    items, bad = [], []
+    for m in models:
+        per = doc.get("estimates", {}).get(m["model"], {})
+        if "nested" in per and "stepping" in per:
+            a, b = per["nested"], per["stepping"]
+            diff = a["log_z"] - b["log_z"]
+            comb = math.hypot(a["log_z_error"], b["log_z_error"])
+            z = diff / comb if comb > 0 else math.inf
+            ok = m.get("estimators_agree")
+            if not ok:
+                bad.append(m["model"])
+            items.append(f"{m['model']}: nested − stepping-stone = {_f(diff, 3)} nats, {abs(z):.1f} combined "
+                         f"standard errors ({_f(comb, 3)}): {'agree' if ok else 'DISAGREE'}.")
+        else:
+            items.append(f"{m['model']}: one estimator only; nothing to compare.")
+    if bad:
+        blocks.append(_Para(f"The two estimators disagree for {', '.join(bad)} beyond three combined stated "
+                            "errors: the log Z used is their mean with an error covering both, and the verdict "
+                            "above is only as good as that. Run longer before drawing conclusions.", "bad"))
+    elif any("one estimator only" not in i for i in items):
+        blocks.append(_Para("The two estimators agree within three combined stated errors for every model that "
+                            "ran both.", "good"))
+    blocks.append(_Items(items))
+    blocks.append(_Heading(*COMPARISON_SECTIONS[5]))
+    notes = doc.get("notes", [])
+    blocks.append(_Items([_sentence(n) for n in notes]) if notes else _Para("No notes."))
+    blocks.append(_Heading(*COMPARISON_SECTIONS[6]))
+    blocks.append(_Para(COMPARISON_CAUTIONS, "warn"))
+    verdict_bad = bool(bad)
+    verdict = (_Para(f"The estimators DISAGREE for {', '.join(bad)}: the comparison is provisional.", "bad")
+               if verdict_bad else
+               _Para(f"Best supported: {best['model']} ({_pct(best['posterior_probability'])}); against "
+                     f"{second['model']}: {second['strength']}. Read the cautions at the end.", "good"))
+    return blocks, figures, verdict
+
+
+def _lvz_figure(doc: dict) -> _Figure:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    tests = doc["tests"]
+    fig, ax = plt.subplots(figsize=(6.5, 0.6 * len(tests) + 1.9), dpi=110)
+    y = np.arange(len(tests))
+    lb = np.array([t["log_bayes_factor"] for t in tests])
+    le = np.array([t["log_bayes_factor_error"] for t in tests])
+    ax.errorbar(lb, y, xerr=2 * le, fmt="o", color="black", capsize=3, label="two runs: ln B (slower : monotone)")
+    one = np.array([-t["one_run_log_bayes_factor_monotone"] for t in tests])
+    one_e = np.array([t["one_run_log_bayes_factor_monotone_error"] for t in tests], dtype=float)
+    bound = np.array([bool(t["one_run_upper_bound_only"]) for t in tests])
+    if (~bound).any():
+        ax.errorbar(one[~bound], y[~bound] + 0.2, xerr=2 * one_e[~bound], fmt="s", color="tab:blue", ms=4,
+                    capsize=3, label="one run (encompassing prior)")
+    if bound.any():
+        ax.scatter(one[bound], y[bound] + 0.2, marker=">", s=40, color="tab:blue",
+                   label="one run: at least this (no monotone draw)")
+    caps = np.array([-t["log_cap_monotone"] for t in tests])
+    ax.scatter(caps, y - 0.2, marker="|", s=200, color="tab:red", label="lowest possible: ln P(monotone)")
+    for step in (-5, -3, -1, 1, 3, 5):
+        ax.axvline(step, color="0.85", lw=0.8, ls=":")
+    ax.axvline(0, color="0.6", lw=0.8)
+    ax.set_yticks(y, [f"layer {t['layer']} may be slower" for t in tests])
+    ax.set_ylim(len(tests) - 0.5, -0.5)
+    ax.set_xlabel("ln B (slower layer : monotone) [nats]\n> 0 favours a slower layer; bars ± 2 stated errors")
+    ax.legend(fontsize=7, loc="best")
+    fig.tight_layout()
+    out = _Figure("lvz_bayes_factors", "Bayes factors of the slower-layer models", (
+        "ln B of each permissive model (a slower layer allowed) against the monotone one, from the two evidences "
+        "(black) and from the permissive run alone (blue; a lower bound, drawn as an arrow head, when no draw was "
+        "monotone), with twice the "
+        "stated errors. Red: the lowest value possible, ln P(monotone) under the permissive prior: no data can "
+        "favour the monotone model more. Dotted lines: ln B = ±1, ±3, ±5 (Kass & Raftery 1995)."), _png(fig))
+    plt.close(fig)
+    return out
+
+
+def _lvz_blocks(doc: dict) -> tuple:
+    from .compare import FIRST_ARRIVAL_LIMIT
+
+    mono = doc["monotone"]
+    tests = doc["tests"]
+    units = doc.get("units", "")
+    s = doc.get("settings", {})
+    blocks = [_Heading(*LVZ_SECTIONS[0])]
+    blocks.append(_Para(
+        f"Run description {doc.get('config', '?')}. A monotone model (velocity never decreases downward) against "
+        f"{_plural(len(tests), 'permissive model')} in which one layer may be slower than the layer above it. Same "
+        f"picks, likelihood and priors otherwise. Monotone model: log Z = {_pm(mono['log_z'], mono['log_z_error'])}. "
+        f"Estimators: {', '.join(s.get('estimators', []))}; {s.get('live_points')} live points; "
+        f"{s.get('rungs')} rungs × ({s.get('rung_burn')} + {s.get('rung_steps')}) steps; seed {s.get('seed')}."))
+    blocks.append(_Heading(*LVZ_SECTIONS[1]))
+    rows = []
+    for t in tests:
+        one = (f"< {_f(t['one_run_log_bayes_factor_monotone'])}" if t["one_run_upper_bound_only"] else
+               _pm(t["one_run_log_bayes_factor_monotone"], t["one_run_log_bayes_factor_monotone_error"]))
+        rows.append([str(t["layer"]), _pm(t["log_z_permissive"], t["log_z_permissive_error"]),
+                     _pm(t["log_bayes_factor"], t["log_bayes_factor_error"]), t["favours"], t["strength"],
+                     _pct(t["prior_inversion_probability"]),
+                     f"{_pct(t['posterior_inversion_probability'])} ± "
+                     f"{_pct(t['posterior_inversion_probability_error'])}", one, _f(t["log_cap_monotone"]),
+                     "agree" if t["one_run_agrees_with_two_runs"] else "DISAGREE"])
+    blocks.append(_Table(["slower layer allowed", "log Z", "ln B (slower : monotone)", "favours", "strength",
+                          "P(inversion) prior", "P(inversion | data)", "one-run ln B (monotone : slower)",
+                          "cap ln(1/P(monotone))", "one run vs two runs"], rows,
+                         "The one-run cross-check uses the permissive run alone: B(monotone : slower) = "
+                         "P(monotone | data) / P(monotone), both under the permissive model. Since P(monotone | data) "
+                         "cannot exceed 1, no data can give the monotone model more than 1 / P(monotone) (the cap, "
+                         "in nats).", align="rrrllrrrrl"))
+    figure = _lvz_figure(doc)
+    blocks.append(figure)
+    blocks.append(_Heading(*LVZ_SECTIONS[2]))
+    any_bad = mono.get("estimators_agree") is False
+    for t in tests:
+        k = t["layer"]
+        cov = t["coverage"]
+        blocks.append(_Subheading(f"Slower layer {k}"))
+        blocks.append(_Para(FIRST_ARRIVAL_LIMIT))
+        if cov["first_arrivals_only"]:
+            blocks.append(_Para("These data hold first arrivals only (no reflections, no buried sources or "
+                                "receivers): the verdict is driven by the prior (how much prior room the slower "
+                                "layer's velocity and thickness are given), not by the data. Read the Bayes factor as "
+                                "a statement about the priors.", "warn"))
+        elif cov["reflections_from_base_or_below"] == 0 and cov["buried_sources_or_receivers"] == 0:
+            blocks.append(_Para(f"The data hold reflections, but none from interface {k} (the base of layer {k}) or "
+                                "below, and no buried sources or receivers: the slower layer is still seen only "
+                                "through the delay it adds, and the verdict leans on the prior.", "warn"))
+        else:
+            blocks.append(_Para(f"The data hold {cov['reflections_from_base_or_below']} reflection pick(s) from "
+                                f"interface {k} or below and {cov['buried_sources_or_receivers']} pick(s) with buried "
+                                "sources or receivers: these see the slower layer's travel time directly.", "note"))
+        srows = [[x["parameter"], _num(x["contraction"], 2), _num(x["median_permissive"]),
+                  _num(x["median_monotone"]), _num(x["shift_in_sd"], 2)] for x in t["sensitivity"]]
+        blocks.append(_Table(["parameter", "contraction", "median (slower allowed)", "median (monotone)",
+                              "shift [sd]"], srows,
+                             "Contraction = 1 − posterior variance / prior variance under the permissive model (near "
+                             "0: the data say nothing about it); shift = monotone median − permissive median, in "
+                             f"permissive posterior standard deviations. Depths and velocities in {units} and "
+                             f"{units}/s.", align="lrrrr"))
+        sens = [x["parameter"] for x in t["sensitivity"] if _finite(x["shift_in_sd"]) and abs(x["shift_in_sd"]) > 1]
+        blocks.append(_Para(f"The test is sensitive to: {', '.join(sens)} (they move by more than one posterior sd "
+                            "between the two models)." if sens else
+                            "No parameter near the slower layer moves by more than one posterior sd between the "
+                            "models."))
+        blocks.append(_Para(f"To resolve a slower layer {k}: reflections from its base (interface {k}) give its "
+                            "two-way time and, with offset, its velocity; S waves see it separately (an S "
+                            "low-velocity zone need not coincide with a P one); a borehole (sensors in and below the "
+                            "layer, or a log) measures its velocity directly."))
+        if t.get("estimators_agree") is False:
+            any_bad = True
+            blocks.append(_Para("The two estimators disagree for this permissive model; see the notes.", "bad"))
+        if not t["one_run_agrees_with_two_runs"]:
+            any_bad = True
+            blocks.append(_Para("The one-run cross-check disagrees with the two-run Bayes factor: at least one of "
+                                "the evidence estimates (or the posterior fraction) is off; run longer before "
+                                "trusting either.", "bad"))
+    blocks.append(_Heading(*LVZ_SECTIONS[3]))
+    notes = [n for t in tests for n in t.get("notes", [])] + list(mono.get("notes", []))
+    blocks.append(_Items([_sentence(n) for n in notes]) if notes else _Para("No notes."))
+    blocks.append(_Heading(*LVZ_SECTIONS[4]))
+    blocks.append(_Para(COMPARISON_CAUTIONS, "warn"))
+    words = "; ".join(f"layer {t['layer']}: {t['favours']} ({t['strength']}, P(inversion | data) "
+                      f"{_pct(t['posterior_inversion_probability'])})" for t in tests)
+    verdict = (_Para(f"{words}. Some checks DISAGREE (see below): the verdict is provisional.", "bad") if any_bad
+               else _Para(f"{words}. Read what first arrivals cannot see, and the cautions.", "good"))
+    return blocks, [figure], verdict
+
+
+def _finite(x) -> bool:
+    try:
+        return math.isfinite(float(x))
+    except (TypeError, ValueError):
+        return False
+
+
+def _render_page_html(title: str, blocks: list, meta: str, verdict: _Para, sections: tuple, kind: str) -> str:
+    """:func:`_render_html` for a page with its own sections (comparison and low-velocity-zone reports)."""
+    page = _render_html(title, blocks, meta, verdict)
+    nav = "<nav>" + "".join(f'<a href="#{a}">{_esc(t)}</a>' for a, t in SECTIONS) + "</nav>"
+    own = "<nav>" + "".join(f'<a href="#{a}">{_esc(t)}</a>' for a, t in sections) + "</nav>"
+    page = page.replace(nav, own, 1).replace(" — inversion report</title>", f" — {kind}</title>", 1)
+    return page
+
+
+def _render_page_markdown(title: str, blocks: list, meta: str, verdict: _Para, png: bool, sections: tuple) -> str:
+    text = _render_markdown(title, blocks, meta, verdict, png)
+    old = "Contents: " + " · ".join(f"[{t}](#{a})" for a, t in SECTIONS)
+    new = "Contents: " + " · ".join(f"[{t}](#{a})" for a, t in sections)
+    return text.replace(old, new, 1)
+
+
+def write_comparison_report(folder, png: bool = False) -> Path:
+    """Write ``report.html`` and ``report.md`` for a folder written by ``invert compare`` or ``invert lvz-test``.
+
+    Parameters
+    ----------
+    folder : str or Path
+        Holds ``comparison.json`` (with ``layer_count.csv``, ``velocity_density.csv`` and
+        ``velocity_quantiles.csv``) or ``lvz_test.json``.
+    png : bool
+        Also write every figure as ``folder/figures/<name>.png`` and show those files in ``report.md``.
+
+    Returns
+    -------
+    Path
+        The HTML page: self-contained (figures embedded as PNG data), like the run report.
+
+    Raises
+    ------
+    FileNotFoundError
+        If the folder holds neither result.
+    ValueError
+        If a result file cannot be read (the message names it).
+    """
+    from .run import write_atomic
+
+    folder = Path(folder)
+    kind = comparison_kind(folder)
+    if kind is None:
+        raise FileNotFoundError(f"{folder} holds neither comparison.json ('invert compare') nor lvz_test.json "
+                                "('invert lvz-test')")
+    name = "comparison.json" if kind == "comparison" else "lvz_test.json"
+    doc = _read_json(folder / name)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            if kind == "comparison":
+                blocks, figures, verdict = _comparison_blocks(doc, folder)
+                title, sections, label = doc.get("title", "Model comparison"), COMPARISON_SECTIONS, "model comparison"
+            else:
+                blocks, figures, verdict = _lvz_blocks(doc)
+                title = f"Low-velocity-zone test: {doc.get('title', '')}".rstrip(": ")
+                sections, label = LVZ_SECTIONS, "low-velocity-zone test"
+    except (KeyError, TypeError, IndexError) as exc:
+        raise ValueError(f"{folder / name}: missing or malformed entry ({exc!r}); was it written by this version "
+                         "of 'invert compare' / 'invert lvz-test'?") from None
+    created = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    meta = f"Report of the {label} in {folder.resolve()}, written {created}."
+    if png:
+        (folder / "figures").mkdir(exist_ok=True)
+        for f in figures:
+            write_atomic(folder / "figures" / f"{f.key}.png", f.png)
+    write_atomic(folder / "report.md", _render_page_markdown(title, blocks, meta, verdict, png, sections))
+    write_atomic(folder / "report.html", _render_page_html(title, blocks, meta, verdict, sections, label))
+    return folder / "report.html"
+

@@ -9,6 +9,7 @@ Every file is written to a temporary name and renamed into place.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import dataclasses
 import hashlib
@@ -17,6 +18,7 @@ import json
 import os
 import sys
 import tempfile
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -25,7 +27,7 @@ import numpy as np
 from .config import RunConfig, load_config
 from .data import (PickSet, offset_message, offset_mismatch, read_picks, reciprocal_mismatch,
                    reciprocity_message)
-from .problem import Problem, build_problem
+from .problem import Problem, build_problem, select_waves
 from .sample import (ConvergenceReport, SamplerResult, convergence_report, initial_around, initial_from_prior,
                      run_ensembles)
 
@@ -49,6 +51,21 @@ class RunOutput:
     @property
     def converged(self) -> bool:
         return self.report.converged
+
+
+@contextlib.contextmanager
+def chain_layout_warning_off():
+    """Silence arviz's "More chains (C) than draws (N)" layout warning, and only that one.
+
+    arviz guesses that an array with more chains than draws may have its axes
+    swapped. Every array this module hands to arviz is built explicitly as
+    (chain, draw, ...) -- with one chain per walker, short runs legitimately have
+    more chains than draws -- so the guess is wrong here and the warning would
+    only alarm the user. Every other warning still reaches them.
+    """
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r"More chains \(\d+\) than draws", category=UserWarning)
+        yield
 
 
 def _say(msg: str, quiet: bool) -> None:
@@ -85,6 +102,8 @@ def fingerprint(config: RunConfig) -> str:
     h.update(json.dumps(config.prior, sort_keys=True, default=str).encode())
     h.update(json.dumps(config.constraints, sort_keys=True, default=str).encode())
     h.update(config.units.encode())
+    if config.waves is not None:  # only when set, so runs without [data] waves keep their fingerprints
+        h.update(repr(config.waves).encode())
     return h.hexdigest()[:16]
 
 
@@ -101,6 +120,28 @@ def default_moves():
     return [(emcee.moves.DEMove(), 1.0)]
 
 
+def valid_prior_draws(problem: Problem, n: int, rng: np.random.Generator, low=None, high=None,
+                      max_rounds: int = 20) -> np.ndarray:
+    """Up to ``n`` prior draws with a finite log posterior (and inside ``[low, high]`` when given).
+
+    Prior draws honour every constraint of the prior (ordering, total depth), unlike
+    points spread over the box of the 1-D marginals, most of which can be invalid.
+    Returns an array (k, D) with ``k <= n`` (``k = 0`` when no valid draw was found).
+    """
+    kept = []
+    total = 0
+    for _ in range(max_rounds):
+        draws = problem.sample_prior(max(n, 64), rng)
+        ok = np.isfinite(problem.log_prob(draws))
+        if low is not None:
+            ok &= np.all((draws >= low) & (draws <= high), axis=1)
+        kept.append(draws[ok])
+        total += int(ok.sum())
+        if total >= n:
+            break
+    return np.concatenate(kept)[:n] if kept else np.empty((0, problem.ndim))
+
+
 def optimum_start(problem: Problem, config: RunConfig, rng: np.random.Generator, quiet: bool = True):
     """Starting points near the posterior mode, found independently for every ensemble.
 
@@ -109,6 +150,11 @@ def optimum_start(problem: Problem, config: RunConfig, rng: np.random.Generator,
     batched call) over the central 99.98% of every prior, from its own seed,
     then starts its walkers in a small ball around what it found. Ensembles
     that land in different modes disagree, and R-hat across ensembles says so.
+
+    The first population is drawn from the prior itself (so it obeys the prior's
+    ordering and depth constraints even when almost all of the box does not).
+    An ensemble for which no valid model is found, or whose optimum has no valid
+    neighbourhood, starts from prior draws instead, and a message says so.
     """
     from scipy.optimize import differential_evolution
 
@@ -116,18 +162,36 @@ def optimum_start(problem: Problem, config: RunConfig, rng: np.random.Generator,
     low, high = problem.bounds()
     width = high - low
     out = np.empty((s.ensembles, s.walkers, problem.ndim))
+    popsize = 12
+    n_pop = popsize * problem.ndim
 
     def cost(x):
         lp = problem.log_prob(np.atleast_2d(x.T))
         return np.where(np.isfinite(lp), -lp, 1e30)
 
+    def from_prior(e: int, why: str):
+        _say(f"ensemble {e + 1}: {why}; starting this ensemble from prior draws instead "
+             "(the sampler then needs a longer burn-in; [sampler] start = 'prior' does this for every ensemble)",
+             quiet)
+        return initial_from_prior(problem.sample_prior, 1, s.walkers, rng, log_prob=problem.log_prob)[0]
+
     for e in range(s.ensembles):
         seed = int(rng.integers(2**31))
+        init = valid_prior_draws(problem, n_pop, rng, low, high)
+        if init.shape[0] < 5:
+            out[e] = from_prior(e, "too few prior draws give a valid model to start the optimiser")
+            continue
         res = differential_evolution(cost, list(zip(low, high)), vectorized=True, updating="deferred", seed=seed,
-                                     maxiter=300, popsize=12, tol=1e-8, polish=False, init="sobol")
+                                     maxiter=300, popsize=popsize, tol=1e-8, polish=False, init=init)
+        if not res.fun < 1e30:
+            out[e] = from_prior(e, "the optimiser found no valid model")
+            continue
         _say(f"ensemble {e + 1}: starting near log-posterior {-res.fun:.2f} "
-             f"({res.nfev} evaluations of differential evolution)", quiet)
-        out[e] = initial_around(res.x, 1e-4 * width, 1, s.walkers, rng, log_prob=problem.log_prob)[0]
+             f"({res.nit} generations of differential evolution)", quiet)
+        try:
+            out[e] = initial_around(res.x, 1e-4 * width, 1, s.walkers, rng, log_prob=problem.log_prob)[0]
+        except RuntimeError:
+            out[e] = from_prior(e, "the optimum lies on the edge of the prior's valid region")
     return out
 
 
@@ -135,18 +199,20 @@ def starting_points(problem: Problem, config: RunConfig, rng: np.random.Generato
     """Initial walker positions (ensembles, walkers, D) as chosen by ``[sampler] start``."""
     s = config.sampler
     if s.start == "classic":
-        point = classic_start(problem, quiet=False if not quiet else True)
+        reasons: list[str] = []
+        point = classic_start(problem, quiet=False if not quiet else True, reasons=reasons)
         if point is not None:
             scale = np.maximum(np.abs(point) * 0.02, 1e-6)
             return initial_around(point, scale, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
-        _say("classic start unavailable for these data; starting near the optimum instead", quiet)
+        why = f" ({reasons[0]})" if reasons else ""
+        _say(f"classic start unavailable for these data{why}; starting near the optimum instead", quiet)
         return optimum_start(problem, config, rng, quiet)
     if s.start == "optimum":
         return optimum_start(problem, config, rng, quiet)
     return initial_from_prior(problem.sample_prior, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
 
 
-def classic_start(problem: Problem, quiet: bool = True):
+def classic_start(problem: Problem, quiet: bool = True, reasons: list | None = None):
     """A starting point from the intercept-time method, or None where it does not apply.
 
     Uses the P first arrivals of the source with the most surface-to-surface
@@ -155,22 +221,31 @@ def classic_start(problem: Problem, quiet: bool = True):
     ``thickness_k`` (Telford, Geldart & Sheriff 1990, ch. 4). Every other
     parameter starts at its prior median; values outside the prior's support
     are replaced by the prior median. The estimate is printed as a sanity check.
-    """
-    import warnings
 
+    When None is returned, one sentence saying why (and whether an estimate was
+    printed) is appended to ``reasons`` if a list is given.
+    """
     from .classic import intercept_time_estimate
+
+    def unavailable(why: str):
+        if reasons is not None:
+            reasons.append(why)
+        return None
 
     picks = problem.picks
     surface = (picks.wave == "P") & (picks.branch == "first") & (picks.source_depth == 0) \
         & (picks.receiver_depth == 0) & np.isfinite(picks.distance) & np.isfinite(picks.travel_time)
     if not surface.any():
-        return None
+        return unavailable("no intercept-time estimate: it needs P first arrivals with source and receivers "
+                           "at the surface")
     counts = np.bincount(picks.source_index[surface], minlength=picks.n_sources)
     src = int(np.argmax(counts))
     sel = surface & (picks.source_index == src)
     n_seg = problem.layers.n_layers + 1
     if sel.sum() < 3 * n_seg:
-        return None
+        return unavailable(f"no intercept-time estimate: {n_seg} line segments need at least {3 * n_seg} surface "
+                           f"P first arrivals from one source; source {picks.source_names[src]} has "
+                           f"{int(sel.sum())}")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         est = intercept_time_estimate(picks.distance[sel], picks.travel_time[sel], n_segments=n_seg)
@@ -182,6 +257,7 @@ def classic_start(problem: Problem, quiet: bool = True):
     point = np.array([float(d.ppf(0.5)) for d in
                       [problem.prior.priors[n] for n in problem.prior.names] + list(problem.nuisance_priors)])
     depth = np.cumsum(est.thicknesses)
+    from_estimate = set()
     for i, name in enumerate(problem.names):
         family, _, k = name.rpartition("_")
         if not k.isdigit():
@@ -196,9 +272,29 @@ def classic_start(problem: Problem, quiet: bool = True):
             value = depth[k - 1]
         if value is not None and np.isfinite(value) and low[i] < value < high[i]:
             point[i] = value
+            from_estimate.add(name)
     if not np.isfinite(problem.log_prob(point[None, :])[0]):
-        return None
+        medians = [n for n in problem.names if n not in from_estimate]
+        if not np.isfinite(problem.log_prior(point[None, :])[0]):
+            where = "a point outside the prior's support or constraints"
+        elif not problem.travel_times(point[None, :])[1][0]:
+            where = "a physically impossible layer model (for instance Vp/Vs not above sqrt(4/3) in some layer)"
+        else:
+            where = "a model that predicts no arrival for some picks"
+        return unavailable("the intercept-time estimate above is a sanity check only and is not used as a "
+                           f"starting point: together with the prior medians of {', '.join(medians) or 'nothing'} "
+                           f"it gives {where}")
     return point
+
+
+def load_picks(config: RunConfig) -> tuple[PickSet, str]:
+    """The run's picks (``[data] waves`` applied) and a sentence on picks left out ("" when none)."""
+    every = read_picks(config.picks, config.sources, config.receivers)
+    picks = select_waves(config, every)
+    if picks.n_picks == every.n_picks:
+        return picks, ""
+    return picks, (f"[data] waves = {list(config.waves)!r}: {picks.n_picks} of the {every.n_picks} picks in "
+                   f"{config.picks} kept; the {every.n_picks - picks.n_picks} picks of other waves are left out.")
 
 
 def data_checks(picks: PickSet) -> list[str]:
@@ -254,26 +350,37 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
             raise ConfigError(config.path, "sampler", f"--steps {int(steps)} must be larger than burn = "
                                                       f"{config.sampler.burn}")
         config = dataclasses.replace(config, sampler=dataclasses.replace(config.sampler, steps=int(steps)))
-    picks = read_picks(config.picks, config.sources, config.receivers)
+    picks, kept = load_picks(config)
     _say(f"Data: {picks.describe()}", quiet)
+    if kept:
+        _say(kept, quiet)
     for message in data_checks(picks):
         _say(message, quiet)
     problem = build_problem(config, picks)
     _say(f"Model: {config.layers.n_layers} layer(s) over a half-space; {problem.ndim} free parameters: "
          f"{', '.join(problem.names)}", quiet)
+    if config.sampler.walkers < 2 * problem.ndim:
+        from .config import ConfigError
+
+        raise ConfigError(config.path, "sampler", f"walkers = {config.sampler.walkers} is too few for "
+                                                  f"{problem.ndim} free parameters: the ensemble moves need at "
+                                                  f"least 2 x parameters = {2 * problem.ndim} walkers per ensemble "
+                                                  f"(an even number); set walkers = {2 * problem.ndim} or more")
     folder = Path(config.output)
     prepare_folder(folder, resume, overwrite)
     s = config.sampler
     rng = np.random.default_rng(s.seed)
     initial = None if resume else starting_points(problem, config, rng, quiet=quiet)
-    result = run_ensembles(problem.log_prob, initial, s.steps, seed=s.seed, checkpoint=folder / "checkpoint.h5",
-                           resume=resume, progress=progress and not quiet,
-                           checkpoint_every=s.checkpoint_every, until=True if s.until_converged else None,
-                           max_steps=s.max_steps if s.until_converged else None,
-                           parameter_names=problem.names, fingerprint=fingerprint(config), moves=default_moves())
-    burn = s.burn if not s.until_converged else None
-    report = convergence_report(result, burn=burn, thin=s.thin)
-    summary = write_outputs(folder, config, problem, result, report, rng)
+    with chain_layout_warning_off():
+        result = run_ensembles(problem.log_prob, initial, s.steps, seed=s.seed,
+                               checkpoint=folder / "checkpoint.h5", resume=resume, progress=progress and not quiet,
+                               checkpoint_every=s.checkpoint_every, until=True if s.until_converged else None,
+                               max_steps=s.max_steps if s.until_converged else None,
+                               parameter_names=problem.names, fingerprint=fingerprint(config),
+                               moves=default_moves())
+        burn = s.burn if not s.until_converged else None
+        report = convergence_report(result, burn=burn, thin=s.thin)
+        summary = write_outputs(folder, config, problem, result, report, rng)
     _say(report.summary(), quiet)
     _say(f"Results written to {folder}/ (posterior.nc, summary.csv, convergence.txt); "
          f"make the report with: invert report {folder}", quiet)

@@ -265,3 +265,78 @@ def test_run_steps_override_and_strict_exit_status(good, capsys):
     # a second run into the same folder needs --overwrite (or --resume)
     assert main(["run", str(good), "--quiet", "--no-progress"]) == 2
     assert "--overwrite" in capsys.readouterr().err
+
+
+# ---------------------------------------------------------------------------- first-hour messages
+def test_check_says_once_whether_the_intercept_time_estimate_is_usable(good, capsys):
+    # The estimate is printed; a Vs prior whose median (600 m/s) is about the P velocity of the
+    # top layer makes the start invalid (Vp/Vs near 1, not above sqrt(4/3): the bulk modulus
+    # rho (Vp^2 - 4 Vs^2 / 3) would be negative; common practice). The output must not then
+    # claim there is no estimate.
+    text = GOOD_RUN.replace('vpvs_mode = "none"', 'vpvs_mode = "vs"').replace(
+        "[sampler]", 'vs_1 = { dist = "uniform", low = 400.0, high = 800.0 }\n'
+                     'vs_2 = { dist = "uniform", low = 400.0, high = 800.0 }\n[sampler]')
+    good.write_text(text)
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "Intercept-time estimate" in out
+    assert "no intercept-time estimate" not in out
+    assert "not used as a starting point" in out and "vs_1" in out
+
+
+def test_check_without_surface_picks_says_why_there_is_no_estimate(good, capsys):
+    picks = LINE_PICKS.replace(",0,0\n", ",0,2\n")  # every receiver 2 m down a hole
+    (good.parent / "picks.csv").write_text(picks)
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "Intercept-time estimate" not in out
+    assert "no intercept-time estimate" in out and "surface" in out
+
+
+def test_run_with_too_few_walkers_is_a_config_error(good, capsys):
+    good.write_text(GOOD_RUN.replace("walkers = 12", "walkers = 4"))
+    assert main(["run", str(good), "--quiet", "--no-progress"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "[sampler]" in err and "walkers = 4" in err and "6" in err
+    assert not (good.parent / "run").exists()
+
+
+def test_run_shows_no_chain_layout_warning(good, recwarn):
+    # 24 walkers (one chain each) x 20 kept draws: arviz's "More chains than draws" guess
+    # would fire; the run silences that one warning.
+    import warnings
+
+    warnings.simplefilter("always")
+    good.write_text(GOOD_RUN.replace("walkers = 12", "walkers = 24"))
+    assert main(["run", str(good), "--steps", "30", "--quiet", "--no-progress"]) == 0
+    assert not [w for w in recwarn if "More chains" in str(w.message)]
+
+
+def test_chain_layout_filter_lets_other_warnings_through():
+    import warnings
+
+    from invert.run import chain_layout_warning_off
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        with chain_layout_warning_off():
+            warnings.warn("More chains (56) than draws (40). Passed array should have shape", UserWarning)
+            warnings.warn("something else went wrong", UserWarning)
+            warnings.warn("More chains (56) than draws (40)", RuntimeWarning)
+    texts = [(w.category, str(w.message)) for w in caught]
+    assert (UserWarning, "something else went wrong") in texts
+    assert (RuntimeWarning, "More chains (56) than draws (40)") in texts
+    assert len(texts) == 2
+
+
+def test_check_with_waves_keeps_only_those_picks(good, capsys):
+    # ten P picks plus two invented S picks; waves = ["P"] inverts the P picks alone, unedited file
+    (good.parent / "picks.csv").write_text(LINE_PICKS + "A,g01,S,0.0150,0.001,3,0,0\nA,g02,S,0.0300,0.001,6,0,0\n")
+    good.write_text(GOOD_RUN.replace('picks = "picks.csv"', 'picks = "picks.csv"\nwaves = ["P"]'))
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "10 of the 12 picks" in out and "left out" in out
+    good.write_text(GOOD_RUN.replace('picks = "picks.csv"', 'picks = "picks.csv"\nwaves = ["Q"]'))
+    assert main(["check", str(good)]) == 2
+    err = capsys.readouterr().err
+    assert str(good) in err and "[data] waves" in err and "unknown wave 'Q'" in err

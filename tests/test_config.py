@@ -333,3 +333,42 @@ def test_template_supplies_units_and_prior(folder):
     config, problem = load_and_build(path)
     assert config.units == "km"
     assert problem.names[:4] == ["thickness_1", "vp_1", "vp_2", "vpvs"]
+
+
+# ---------------------------------------------------------------------------- [data] waves
+WAVES_CASES = [
+    ("waves-unknown-name", {"data.waves": ["P", "SH"]}, "data", ["waves = ['P', 'SH']", "unknown wave 'SH'", "P and S"]),
+    ("waves-a-string", {"data.waves": "P"}, "data", ["waves = 'P'", "a list of wave names", 'waves = ["P"]']),
+    ("waves-empty", {"data.waves": []}, "data", ["waves = []", "a list of wave names"]),
+    ("waves-twice", {"data.waves": ["P", "p"]}, "data", ["'P' is listed twice"]),
+    ("waves-not-in-file", {"data": {"picks": "net_picks.csv", "sources": "net_sources.csv",
+                                    "receivers": "net_receivers.csv", "waves": ["S"]},
+                           **{k: v for k, v in NETWORK.items() if k != "data"}}, "data",
+     ["waves = ['S']", "net_picks.csv", "has no S picks", "holds P"]),
+]
+
+
+@pytest.mark.parametrize("case_id, changes, section, fragments", WAVES_CASES, ids=[c[0] for c in WAVES_CASES])
+def test_waves_errors_name_the_file_and_key(folder, case_id, changes, section, fragments):
+    path, err = _error_for(folder, changes)
+    message = str(err)
+    assert err.key == "data" and "[data]" in message and str(err).startswith(f"{path}: ")
+    for fragment in fragments:
+        assert fragment in message, f"{fragment!r} not in {message!r}"
+
+
+def test_waves_keeps_only_the_listed_waves(folder):
+    # the P picks alone of the joint P + S file, with no S parameters in the model
+    path = folder / "run.toml"
+    path.write_text(toml_text(changed(BASE, {"data.waves": ["p"], "model.vpvs_mode": "none",
+                                             "prior.vpvs": DELETE})))
+    config, problem = load_and_build(path)
+    assert config.waves == ("P",)
+    assert problem.picks.n_picks == 3 and set(problem.picks.wave) == {"P"}
+    assert list(problem.picks.line_numbers) == [3, 4, 5]  # lines of the file are kept for messages
+    # both waves listed, or the key absent: every pick
+    path.write_text(toml_text(changed(BASE, {"data.waves": ["S", "P"]})))
+    assert load_and_build(path)[1].picks.n_picks == 5
+    path.write_text(toml_text(BASE))
+    config, problem = load_and_build(path)
+    assert config.waves is None and problem.picks.n_picks == 5

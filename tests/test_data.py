@@ -440,3 +440,36 @@ def test_flat_refractor_passes_the_1d_check(tmp_path):
     pairs = offset_mismatch(_read(str(tmp_path), _dipping_refractor_picks(0.0)))
     assert len(pairs) == 7 and max(p.misfit for p in pairs) < 1e-6
     assert "consistent with a 1-D structure" in offset_message(pairs)
+
+
+def _pairs_with_misfits(misfits):
+    """Same-offset pairs (invented routes) whose normalised differences are ``misfits``."""
+    from invert.data import PickPair
+
+    return [PickPair(2 * k, 2 * k + 1, 2 * k + 2, 2 * k + 3, f"A -> g{k}", f"B -> h{k}", "P first",
+                     0.1 + 0.001 * m, 0.1, 0.001) for k, m in enumerate(misfits)]
+
+
+@pytest.mark.parametrize("n", [2, 3, 4, 7, 20])
+def test_same_offset_verdict_follows_the_binomial_tail(n):
+    # One pair beyond 3 sigma among n. Under Gaussian errors a pair exceeds 3 sigma with
+    # q = erfc(3 / sqrt 2) = 0.0026998 (normal tail; Abramowitz & Stegun, Handbook of
+    # Mathematical Functions, 1964, ch. 26, from memory), so P(at least one of n) = 1 - (1 - q)^n
+    # (binomial distribution; common practice): 0.0081 for n = 3, 0.0108 for n = 4. The
+    # structure is called not 1-D only below 1 %.
+    q = math.erfc(3.0 / math.sqrt(2.0))
+    message = offset_message(_pairs_with_misfits([3.5] + [0.5] * (n - 1)))
+    chance = 1.0 - (1.0 - q) ** n
+    assert f"probability {chance:.2g}" in message
+    if chance < 0.01:
+        assert "not 1-D" in message and "more than chance allows" in message
+    else:
+        assert "not 1-D" not in message and "consistent with a 1-D structure" in message
+
+
+def test_same_offset_two_pairs_beyond_chance_are_not_1d():
+    # two of 7 beyond 3 sigma: P = 1 - (1-q)^7 - 7 q (1-q)^6 = 1.4e-4 (binomial; common practice)
+    q = math.erfc(3.0 / math.sqrt(2.0))
+    chance = 1.0 - (1.0 - q) ** 7 - 7 * q * (1.0 - q) ** 6
+    message = offset_message(_pairs_with_misfits([3.5, 4.0] + [0.5] * 5))
+    assert f"probability {chance:.2g}" in message and "not 1-D" in message

@@ -698,3 +698,65 @@ def test_resume_after_killed_process_equals_uninterrupted_run(tmp_path):
     final = invert_quietly(config, resume=True)
     assert np.array_equal(final.result.chain, reference.result.chain)
     assert np.array_equal(final.result.log_prob, reference.result.log_prob)
+
+
+# ============================================================================ optimum start
+BOREHOLE_PRIOR = Path(__file__).resolve().parents[1] / "priors" / "borehole.toml"
+
+
+def write_borehole_four_layer_case(folder: Path) -> Path:
+    """The borehole prior template with 4 layers: almost all of its box breaks the constraints.
+
+    Thickness priors are log-normal (median 15 m) while the interfaces must lie above 100 m
+    and P velocities must increase (one exception): 4e-5 of the box of the 1-D marginals was
+    valid when measured. Ten synthetic P picks, one straight 500 m/s ray each (invented).
+    """
+    rows = ["source,receiver,wave,time,sigma,distance,source_depth,receiver_depth"]
+    for i, z in enumerate(range(5, 55, 5)):
+        rows.append(f"s,r{i},P,{np.hypot(2.0, z) / 500.0:.6f},0.001,2,0,{z}")
+    (folder / "picks.csv").write_text("\n".join(rows) + "\n")
+    (folder / "run.toml").write_text(f'''title = "borehole template, 4 layers (synthetic)"
+prior_file = "{BOREHOLE_PRIOR.as_posix()}"
+[data]
+picks = "picks.csv"
+[model]
+layers = 4
+[sampler]
+walkers = 28
+ensembles = 1
+steps = 20
+burn = 5
+seed = 3
+''')
+    return folder / "run.toml"
+
+
+def test_optimum_start_survives_a_prior_box_that_is_almost_all_invalid(tmp_path, capsys):
+    from invert.problem import build_problem
+
+    config = run_module.load_config(write_borehole_four_layer_case(tmp_path))
+    problem = build_problem(config, read_picks(config.picks))
+    lo, hi = problem.bounds()
+    box = lo + (hi - lo) * np.random.default_rng(0).random((2000, problem.ndim))
+    assert np.isfinite(problem.log_prior(box)).mean() < 0.01  # the premise: the box is almost all invalid
+    start = run_module.optimum_start(problem, config, np.random.default_rng(1), quiet=False)
+    assert start.shape == (1, 28, problem.ndim)
+    assert np.all(np.isfinite(problem.log_prob(start[0])))
+    assert "starting near log-posterior" in capsys.readouterr().out
+
+
+def test_optimum_start_falls_back_to_prior_draws_with_a_message(tmp_path, capsys, monkeypatch):
+    import scipy.optimize
+    from invert.problem import build_problem
+
+    config = run_module.load_config(write_borehole_four_layer_case(tmp_path))
+    problem = build_problem(config, read_picks(config.picks))
+
+    class Nothing:  # what differential evolution returns when every candidate was invalid
+        fun, x, nit = 1e30, problem.bounds()[0], 1
+
+    monkeypatch.setattr(scipy.optimize, "differential_evolution", lambda *a, **k: Nothing())
+    start = run_module.optimum_start(problem, config, np.random.default_rng(1), quiet=False)
+    assert np.all(np.isfinite(problem.log_prob(start[0])))
+    out = capsys.readouterr().out
+    assert "found no valid model" in out and "prior draws" in out

@@ -190,3 +190,52 @@ def test_prior_posterior_figure(batch, tmp_path):
 def test_path_must_be_png(batch, tmp_path):
     with pytest.raises(ValueError, match=".png"):
         plots.plot_velocity_depth(batch, path=tmp_path / "vd.pdf")
+
+
+# ----------------------------------------------------------- what the picks are plotted against
+def test_pick_abscissa_follows_the_survey_layout():
+    depths = np.arange(2.0, 66.0, 2.0)
+    n = depths.size
+    # receivers down a hole, source 2 m from the wellhead (invented downhole survey)
+    x, label, kind = plots.pick_abscissa(np.full(n, 2.0), np.zeros(n), depths, source=["s"] * n,
+                                         receiver=[f"r{i}" for i in range(n)])
+    assert kind == "receiver_depth" and label == "receiver depth [m]"
+    np.testing.assert_array_equal(x, depths)
+    # two sources at 2 m and 20 m from the hole: still receiver depth
+    x, label, kind = plots.pick_abscissa(np.r_[np.full(n, 2.0), np.full(n, 20.0)], np.zeros(2 * n),
+                                         np.r_[depths, depths], source=["a"] * n + ["b"] * n,
+                                         receiver=[f"r{i}" for i in range(n)] * 2)
+    assert kind == "receiver_depth"
+    # sources fired down a hole into one surface receiver
+    x, label, kind = plots.pick_abscissa(np.full(n, 5.0), depths, np.zeros(n), source=[f"s{i}" for i in range(n)],
+                                         receiver=["g"] * n, length_unit="km")
+    assert kind == "source_depth" and label == "source depth [km]"
+    # hole to hole, 30 m apart, a source every 8 m down one hole and every receiver level of the
+    # other: straight-line distance sqrt(x^2 + dz^2) (Pythagoras)
+    src_depths = np.arange(2.0, 66.0, 8.0)
+    zs = np.repeat(src_depths, n)
+    zr = np.tile(depths, src_depths.size)
+    x, label, kind = plots.pick_abscissa(np.full(zs.size, 30.0), zs, zr, source=zs.astype(str),
+                                         receiver=zr.astype(str))
+    assert kind == "straight_line" and "straight-line" in label
+    np.testing.assert_allclose(x, np.sqrt(30.0 ** 2 + (zr - zs) ** 2))
+    # surface line, and a network of events at 5-20 km depth recorded 10-200 km away (here all
+    # three events under one epicentre, so each station sees one distance): horizontal
+    x, label, kind = plots.pick_abscissa(np.arange(2.0, 62.0, 4.0), np.zeros(15), np.zeros(15))
+    assert kind == "horizontal" and label == "horizontal source–receiver distance [m]"
+    dist = np.tile(np.linspace(10.0, 200.0, 8), 3)
+    x, label, kind = plots.pick_abscissa(dist, np.repeat([5.0, 12.0, 20.0], 8), np.zeros(24),
+                                         source=np.repeat(["e1", "e2", "e3"], 8),
+                                         receiver=np.tile([f"st{i}" for i in range(8)], 3), length_unit="km")
+    assert kind == "horizontal"
+    np.testing.assert_array_equal(x, dist)
+
+
+def test_travel_time_figures_take_the_abscissa_label(picks):
+    x, observed, sigma, predicted, source, wave = picks
+    fig = plots.plot_travel_time_fit(x, observed, sigma, predicted, source=source, wave=wave,
+                                     x_label="receiver depth [m]")
+    assert fig.axes[1].get_xlabel() == "receiver depth [m]"
+    fig = plots.plot_prior_predictive(x, observed, sigma, predicted, source=source, wave=wave,
+                                      x_label="receiver depth [m]")
+    assert fig.axes[0].get_xlabel() == "receiver depth [m]"

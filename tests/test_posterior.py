@@ -410,3 +410,26 @@ def test_correlation_matrix_and_named_pairs():
     assert pairs[0]["text"].startswith("thickness_1 vs vp_2: correlation 0.8")
     assert pairs[0]["text"].endswith("— the classic thickness–velocity trade-off")
     assert po.strongest_pairs(corr, ["thickness_1", "vp_2", "vs_1", "fixed"], min_abs=0.9) == []
+
+
+def test_residual_flags_use_a_bonferroni_threshold_over_the_groups_tested():
+    # Five sources, four picks each with sigma 2 ms: standard error of a group mean 1 ms.
+    # Bonferroni over 5 two-sided tests at family-wise 5 %: each at 1 %, |z| > 2.5758
+    # (standard normal 0.5 % upper point; Abramowitz & Stegun, Handbook of Mathematical
+    # Functions, 1964, ch. 26, from memory; Dunn, J. Am. Stat. Assoc. 56, 1961, for the
+    # correction).
+    # A source 2.3 standard errors late was flagged by the old fixed 2-sigma rule; it is not now.
+    source = np.repeat(["A", "B", "C", "D", "E"], 4)
+    means = {"A": 0.0023, "B": 0.0027, "C": 0.0, "D": -0.0004, "E": 0.0001}
+    residuals = np.array([[means[s] for s in source]])
+    rows = po.residual_groups(residuals, {"source": source}, np.full(20, 0.002))
+    assert rows[0]["threshold"] == pytest.approx(2.5758, abs=1e-4)
+    assert rows[0]["groups_tested"] == 5
+    assert [r["label"] for r in rows if r["systematic"]] == ["B"]
+    text = po.describe_systematic_residuals(rows)
+    assert len(text) == 1 and "2.58 allowed for 5 groups tested" in text[0]
+    # one group: the plain two-sided 5 % point, 1.95996 (same source, from memory)
+    assert po.bonferroni_threshold(1) == pytest.approx(1.95996, abs=1e-5)
+    # an explicit threshold is used as given
+    fixed = po.residual_groups(residuals, {"source": source}, np.full(20, 0.002), threshold=2.0)
+    assert [r["label"] for r in fixed if r["systematic"]] == ["A", "B"]

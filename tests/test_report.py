@@ -321,6 +321,90 @@ def test_bad_arguments():
         report.write_report(".", bedrock_velocity=-1.0)
 
 
+def test_two_way_times_in_ms_for_both_waves_of_a_metre_run(page):
+    derived = _section(page, "derived")
+    for wave in ("P", "S"):
+        assert _row(derived, f"{wave} two-way time to interface 1")[0] == "ms"
+    # vertical two-way time 2 h / v of the true 4 m layer (geometry; common practice): 16 ms in P
+    # at 500 m/s, 36.4 ms in S at 220 m/s
+    assert float(_row(derived, "P two-way time to interface 1")[-1]) == pytest.approx(2 * 4.0 / 500.0 * 1e3)
+    assert float(_row(derived, "S two-way time to interface 1")[-1]) == pytest.approx(2 * 4.0 / 220.0 * 1e3,
+                                                                                      rel=1e-4)
+
+
+# An invented deep well (synthetic): S first arrivals only, source 0.1 km from the wellhead,
+# receivers every 0.15 km from 0.15 to 1.8 km; 1.2 km/s S over 2.0 km/s S, interface at 0.6 km.
+DEEP_WELL_TOML = """\
+title = "Deep well: S-only downhole survey (invented, synthetic)"
+units = "km"
+[data]
+picks = "picks.csv"
+[model]
+layers = 1
+vpvs_mode = "vs"
+[prior]
+thickness_1 = { dist = "uniform", low = 0.1, high = 1.5 }
+vp = { dist = "uniform", low = 1.0, high = 6.0 }
+vs = { dist = "uniform", low = 0.5, high = 3.5 }
+[constraints]
+increasing_velocity = false
+[sampler]
+walkers = 12
+ensembles = 2
+steps = 60
+burn = 20
+seed = 4
+start = "prior"
+[output]
+folder = "run"
+[truth]
+thickness_1 = 0.6
+vp_1 = 2.4
+vp_2 = 4.0
+vs_1 = 1.2
+vs_2 = 2.0
+"""
+
+
+@pytest.fixture(scope="module")
+def deep_well(tmp_path_factory):
+    """Report page of a short S-only borehole run in km whose prior allows invalid models."""
+    from invert.run import run_inversion
+
+    folder = tmp_path_factory.mktemp("deep_well")
+    model = LayerModel.build([0.6], [2.4, 4.0], vs=[1.2, 2.0])
+    cols = layout({"kind": "borehole", "offsets": [0.1], "depths": [0.15 * i for i in range(1, 13)],
+                   "waves": ["S"]})
+    picks = synthesize(model, cols, np.full(12, 0.004), np.random.default_rng(8))
+    write_picks(folder / "picks.csv", picks, comment="synthetic picks, invented deep well")
+    (folder / "run.toml").write_text(DEEP_WELL_TOML)
+    out = run_inversion(folder / "run.toml", quiet=True, progress=False)
+    return report.write_report(out.folder).read_text(encoding="utf-8")
+
+
+def test_s_only_km_run_shows_s_two_way_times_in_seconds(deep_well):
+    derived = _section(deep_well, "derived")
+    assert "P two-way time" not in deep_well
+    cells = _row(derived, "S two-way time to interface 1")
+    assert cells[0] == "s"
+    # 2 h / vs of the true model (geometry; common practice): 2 x 0.6 km / 1.2 km/s = 1.0 s
+    assert float(cells[-1]) == pytest.approx(1.0)
+
+
+def test_borehole_picks_plotted_against_receiver_depth(deep_well):
+    figures = _section(deep_well, "figures")
+    assert "against receiver depth (receivers down a hole" in figures
+    assert "against horizontal" not in figures and "against source–receiver distance" not in figures
+
+
+def test_prior_predictive_leaves_out_invalid_prior_models(deep_well):
+    # vs up to 3.5 km/s with vp from 1 km/s: many prior draws have Vp/Vs below sqrt(4/3)
+    m = re.search(r"(\d+) of (\d+) prior draws give no valid layer model", deep_well)
+    assert m and 0 < int(m.group(1)) < int(m.group(2))
+    m2 = re.search(r"Travel times of (\d+) models drawn from the prior", deep_well)
+    assert m2 and int(m2.group(1)) == int(m.group(2)) - int(m.group(1))
+
+
 # ------------------------------------------------------------------ BROWSER TEST
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update", "--disable-sync",
@@ -382,3 +466,175 @@ def test_report_renders_in_a_real_headless_browser(run_dir, tmp_path):
     assert pixels.shape == (2400, 1200)
     assert pixels.std() > 10.0  # text, tables and figures, not a uniform page
     assert len(np.unique(pixels)) > 50
+
+
+# ------------------------------------------------------------------ reports of comparisons and low-velocity-zone tests
+COMPARE_SURVEY = """\
+title = "synthetic refraction line at an invented site"
+units = "m"
+seed = 5
+[model]
+thickness = [4.0, 10.0]
+vp = {vp}
+vpvs = [2.0, 2.0, 2.0]
+[survey]
+kind = "line"
+shots = [-1.0, 61.0]
+receivers = {{ first = 0.0, last = 60.0, spacing = 5.0 }}
+waves = ["P"]
+branches = {branches}
+sigma = 0.001
+[output]
+picks = "picks.csv"
+"""
+
+COMPARE_RUN = """\
+title = "synthetic line, {layers} layer(s) over a half-space"
+units = "m"
+[data]
+picks = "picks.csv"
+[model]
+layers = {layers}
+vpvs_mode = "none"
+[prior]
+thickness = {{ dist = "uniform", low = 0.5, high = 30.0 }}
+vp = {{ dist = "uniform", low = 150.0, high = 4000.0 }}
+[constraints]
+increasing_velocity = true
+[output]
+folder = "run_{layers}"
+"""
+
+
+def _compare_site(folder: Path, vp: str, branches: str) -> None:
+    from invert.synthetic import make_synthetic
+
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "survey.toml").write_text(COMPARE_SURVEY.format(vp=vp, branches=branches))
+    make_synthetic(folder / "survey.toml")
+    for n in (1, 2):
+        (folder / f"layers{n}.toml").write_text(COMPARE_RUN.format(layers=n))
+
+
+@pytest.fixture(scope="module")
+def comparison_dir(tmp_path_factory):
+    """A tiny 2-vs-3-layer comparison (both estimators, few live points and steps) and its report."""
+    from invert import compare as cmp
+    from invert.config import load_config
+
+    base = tmp_path_factory.mktemp("comparison")
+    _compare_site(base, "[500.0, 1500.0, 3000.0]", '["first"]')
+    settings = cmp.EvidenceSettings(live_points=30, rungs=4, rung_steps=40, rung_burn=10, seed=2)
+    cands = [cmp.Candidate("two layers", load_config(base / "layers1.toml")),
+             cmp.Candidate("three layers", load_config(base / "layers2.toml"))]
+    cmp.compare_models(cands, settings, folder=base / "comparison", title="How many layers? (synthetic)",
+                       progress=False)
+    return base / "comparison"
+
+
+@pytest.fixture(scope="module")
+def lvz_dir(tmp_path_factory):
+    """A tiny low-velocity-zone test (nested sampling only) on a line with reflections from below the slow layer."""
+    from invert import compare as cmp
+
+    base = tmp_path_factory.mktemp("lvz")
+    _compare_site(base, "[800.0, 500.0, 2500.0]", '["first", "reflection:2"]')
+    cmp.lvz_test(base / "layers2.toml", layer=2, folder=base / "lvz", progress=False,
+                 settings=cmp.EvidenceSettings(estimators=("nested",), live_points=30, seed=2))
+    return base / "lvz"
+
+
+def _images(page: str) -> list:
+    return [base64.b64decode(m) for m in re.findall(r'src="data:image/png;base64,([^"]+)"', page)]
+
+
+def test_comparison_report_from_the_command_line(comparison_dir):
+    from invert.cli import main
+
+    assert main(["report", str(comparison_dir), "--png"]) == 0
+    page = (comparison_dir / "report.html").read_text(encoding="utf-8")
+    md = (comparison_dir / "report.md").read_text(encoding="utf-8")
+    for anchor, heading in report.COMPARISON_SECTIONS:
+        assert f'id="{anchor}"' in page and html.escape(heading) in page and f"## {heading}" in md
+    # self-contained: three embedded PNG figures (log Z, layer count, averaged density), nothing fetched
+    images = _images(page)
+    assert len(images) == 3
+    assert all(_png_size(img)[0] >= 400 for img in images)
+    assert not re.search(r'(src|href)="(https?:|//)', page)
+    for key in ("log_evidence", "layer_count", "velocity_density"):
+        assert (comparison_dir / "figures" / f"{key}.png").read_bytes()[:8] == PNG_SIGNATURE
+        assert f"](figures/{key}.png)" in md
+    assert "Kass &amp; Raftery" in page and "Cautions" in page
+
+
+def test_comparison_report_probabilities_follow_bayes_theorem(comparison_dir):
+    # the page's posterior model probabilities against P(m | d) = Z_m / sum Z (equal prior odds; Bayes' theorem)
+    # recomputed here from the log evidences in comparison.json
+    report.write_comparison_report(comparison_dir)
+    doc = json.loads((comparison_dir / "comparison.json").read_text())
+    log_z = np.array([m["log_z"] for m in doc["models"]])
+    p = np.exp(log_z - log_z.max())
+    p /= p.sum()
+    md = (comparison_dir / "report.md").read_text(encoding="utf-8")
+    for m, prob in zip(doc["models"], p):
+        row = next(line for line in md.splitlines() if line.startswith(f"| {m['model']} |")
+                   and "%" in line)
+        assert report._pct(prob) in row, (row, prob)
+        assert f"{m['log_z']:.2f}".replace("-", "−") in row
+    layers = {r["layers_with_half_space"]: r["posterior_probability"] for r in doc["layer_count"]}
+    assert layers[2] == pytest.approx(p[0]) and layers[3] == pytest.approx(p[1])
+
+
+def test_lvz_report(lvz_dir):
+    path = report.write_comparison_report(lvz_dir)
+    page = path.read_text(encoding="utf-8")
+    for anchor, heading in report.LVZ_SECTIONS:
+        assert f'id="{anchor}"' in page and html.escape(heading) in page
+    assert len(_images(page)) == 1
+    assert "no head wave at its top" in page and "reflections from its base" in page
+    assert "first arrivals only" not in page  # the line holds reflections from the base of the slow layer
+    doc = json.loads((lvz_dir / "lvz_test.json").read_text())
+    assert doc["tests"][0]["favours"] in page
+
+
+def test_comparison_report_errors_name_the_file(tmp_path, comparison_dir):
+    from invert.cli import main
+
+    with pytest.raises(FileNotFoundError, match="comparison.json"):
+        report.write_comparison_report(tmp_path)
+    broken = tmp_path / "broken"
+    broken.mkdir()
+    (broken / "comparison.json").write_text('{"title": "x", "models": [{"model": "a"}]}')
+    with pytest.raises(ValueError, match="comparison.json"):
+        report.write_comparison_report(broken)
+    assert main(["report", str(broken)]) == 2
+
+
+def test_comparison_report_renders_in_a_real_headless_browser(comparison_dir, tmp_path):
+    """BROWSER TEST: Chromium decodes every figure of the comparison page and draws a non-blank page."""
+    from PIL import Image
+
+    report.write_comparison_report(comparison_dir)
+    browser = _chromium()
+    profile = tmp_path / "profile"
+    probe = ("<script>window.addEventListener('load',function(){document.body.setAttribute('data-widths',"
+             "Array.from(document.images).map(function(i){return i.complete?i.naturalWidth:0}).join(','));});"
+             "</script></body>")
+    probed = tmp_path / "probed.html"
+    probed.write_text((comparison_dir / "report.html").read_text(encoding="utf-8").replace("</body>", probe),
+                      encoding="utf-8")
+    dom = subprocess.run([browser, *CHROMIUM_FLAGS, f"--user-data-dir={profile}",
+                          "--run-all-compositor-stages-before-draw", "--virtual-time-budget=10000",
+                          "--dump-dom", probed.as_uri()], capture_output=True, text=True, timeout=180)
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    widths = re.search(r'data-widths="([^"]*)"', dom.stdout)
+    assert widths, "the page's load event did not run"
+    values = [int(w) for w in widths.group(1).split(",")]
+    assert len(values) == 3 and min(values) >= 400, values
+    shot = tmp_path / "shot.png"
+    res = subprocess.run([browser, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "--window-size=1200,2400",
+                          f"--screenshot={shot}", (comparison_dir / "report.html").as_uri()],
+                         capture_output=True, text=True, timeout=180)
+    assert res.returncode == 0 and shot.exists(), res.stderr[-2000:]
+    pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert pixels.std() > 10.0 and len(np.unique(pixels)) > 50
