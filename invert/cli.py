@@ -17,7 +17,7 @@ def _cmd_run(args) -> int:
     from .run import run_inversion
 
     out = run_inversion(args.config, resume=args.resume, overwrite=args.overwrite, progress=not args.no_progress,
-                        quiet=args.quiet, steps=args.steps)
+                        quiet=args.quiet, steps=args.steps, report_hint=not args.report)
     if args.report:
         from .report import write_report
 
@@ -34,6 +34,8 @@ def _cmd_check(args) -> int:
     config = load_config(args.config)
     picks, kept = load_picks(config)
     print(f"Run description {config.path}: '{config.title}', units {config.length_unit} and {config.velocity_unit}")
+    if config.prior_template is not None:
+        print(f"Prior template: {config.prior_template.resolve()}")
     print(f"Data: {picks.describe()}")
     if kept:
         print(kept)
@@ -48,11 +50,24 @@ def _cmd_check(args) -> int:
     from .run import classic_start
 
     reasons: list[str] = []
+    velocities: list = []
     try:
-        if classic_start(problem, quiet=False, reasons=reasons) is None:
+        if classic_start(problem, quiet=False, reasons=reasons, velocities=velocities) is None:
             print(f"({reasons[0] if reasons else 'no intercept-time estimate for these data'})")
     except (ValueError, RuntimeError) as exc:
         print(f"(no intercept-time estimate: {exc})")
+    from .run import plausibility_warnings, prior_support_error
+
+    warned = plausibility_warnings(problem, velocities[0] if velocities else None)
+    for message in warned:
+        print(message)
+    support = prior_support_error(problem)
+    if support:
+        raise ConfigError(config.path, "prior", support)
+    if warned:
+        print("Everything reads, but see the WARNING above before you start the inversion "
+              f"(invert run {args.config}).")
+        return 0
     print("Everything reads and checks out; start the inversion with: invert run", args.config)
     return 0
 
@@ -76,6 +91,8 @@ def _cmd_report(args) -> int:
     html = write_report(Path(args.run_dir), png=args.png, bedrock_velocity=args.bedrock_vs,
                         site_classes=args.site_classes)
     print(f"Report written to {html} (open it in a browser; it works offline)")
+    if args.png:
+        print(f"Figures written as PNG files to {Path(args.run_dir) / 'figures'}/")
     print(CAUTION)
     return 0
 
@@ -85,6 +102,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="invert",
         description="Bayesian inversion of 1-D layered velocity structure from P and S arrival times. " + CAUTION)
+    from . import __version__
+
+    p.add_argument("--version", action="version", version=f"invert {__version__}",
+                   help="print the version of invert and exit")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     r = sub.add_parser("run", help="sample the posterior of the run described by CONFIG (TOML)",
@@ -151,6 +172,10 @@ def main(argv=None) -> int:
     except ValueError as exc:
         if args.command == "report":
             print(f"error: {exc}", file=sys.stderr)
+            return 2
+        if args.command == "run" and "refusing to resume" in str(exc):
+            print(f"error: {exc}. Start the run again with --overwrite, or set another [output] folder",
+                  file=sys.stderr)
             return 2
         raise
     except KeyboardInterrupt:

@@ -93,6 +93,7 @@ class RunConfig:
     truth: dict = field(default_factory=dict)
     raw: dict = field(default_factory=dict)
     waves: tuple[str, ...] | None = None  # [data] waves: keep only these waves' picks (None: all)
+    prior_template: Path | None = None  # the prior template file actually read (prior_file resolved)
 
     @property
     def length_unit(self) -> str:
@@ -174,6 +175,48 @@ def _path(base: Path, value: str | None) -> Path | None:
     return p if p.is_absolute() else (base / p)
 
 
+def template_folders() -> list[Path]:
+    """Folders holding the prior templates shipped with invert, in search order.
+
+    Installed packages carry them as package data (``invert/priors``); a source
+    checkout (or an editable install) has them in ``priors/`` beside the package.
+    """
+    here = Path(__file__).resolve().parent
+    return [d for d in (here / "priors", here.parent / "priors") if d.is_dir()]
+
+
+def builtin_templates() -> dict[str, Path]:
+    """Name (file name without ``.toml``) -> path of every shipped prior template."""
+    out: dict[str, Path] = {}
+    for folder in template_folders():
+        for f in sorted(folder.glob("*.toml")):
+            out.setdefault(f.stem, f)
+    return out
+
+
+def resolve_prior_file(path, base: Path, value: str) -> Path:
+    """The prior template named by ``prior_file``: a file (relative to ``base``) or a shipped template name.
+
+    A path that exists wins; otherwise a name such as ``"shallow_site"`` (with or
+    without ``.toml`` or a ``priors/`` prefix) selects the template shipped with
+    invert. Raises :class:`ConfigError` with near matches when neither exists.
+    """
+    given = _path(base, value)
+    if given.exists():
+        return given
+    shipped = builtin_templates()
+    stem = Path(value).name
+    stem = stem[:-5] if stem.endswith(".toml") else stem
+    parent = Path(value).parent
+    if stem in shipped and not Path(value).is_absolute() and str(parent) in (".", "priors"):
+        return shipped[stem]
+    close = difflib.get_close_matches(stem, sorted(shipped), n=2, cutoff=0.5)
+    hint = f"; did you mean {' or '.join(repr(c) for c in close)}?" if close else ""
+    names = ", ".join(repr(n) for n in sorted(shipped)) or "none found"
+    raise ConfigError(path, "", f"prior_file = {value!r}: file not found ({given}), and not the name of a "
+                                f"template shipped with invert ({names}){hint}")
+
+
 def _read_toml(path: Path) -> dict:
     if not path.exists():
         raise ConfigError(path, "", "file not found")
@@ -209,10 +252,11 @@ def load_config(path) -> RunConfig:
 
     # prior template: its [model], [prior] and [constraints] are defaults that the run overrides
     template: dict = {}
+    tpath = None
     if "prior_file" in raw:
-        tpath = _path(base, _get(path, "", raw, "prior_file", str, expect="a path to a TOML prior template"))
-        if not tpath.exists():
-            raise ConfigError(path, "", f"prior_file = {raw['prior_file']!r}: file not found ({tpath})")
+        tpath = resolve_prior_file(path, base, _get(path, "", raw, "prior_file", str,
+                                                    expect="a path to a TOML prior template, or the name of a "
+                                                           "shipped template such as 'shallow_site'"))
         template = _read_toml(tpath)
         _unknown(tpath, "", template.keys(), {"template", "prior", "constraints"})
         template_units = template.get("template", {}).get("units")
@@ -223,6 +267,13 @@ def load_config(path) -> RunConfig:
                                         f"written in {template_units!r}; use a template in the same units")
     title = _get(path, "", raw, "title", str, "untitled run")
     units = raw.get("units")
+    if not raw:
+        raise ConfigError(path, "", "the run description is empty; it needs at least units = \"m\" or \"km\", "
+                                    "[data] picks and [model] layers (docs/config.md; the demo's run.toml is an "
+                                    "example)")
+    if "units" not in raw:
+        raise ConfigError(path, "", "missing key 'units': expected units = 'm' (metres, m/s) or 'km' (kilometres, km/s), "
+                                    "the length unit of the picks' distances and depths")
     if units not in UNITS:
         raise ConfigError(path, "", f"units = {units!r}: expected 'm' (metres, m/s) or 'km' (kilometres, km/s)")
 
@@ -345,4 +396,5 @@ def load_config(path) -> RunConfig:
         raise ConfigError(path, "truth", "expected parameter = number entries (the true model of synthetic data)")
     return RunConfig(path=path, title=title, units=units, picks=picks, sources=sources, receivers=receivers,
                      layers=layers, prior=prior, constraints=constraints, noise=noise, nuisance=nuisance,
-                     sampler=sampler, output=folder, truth=dict(truth), raw=raw, waves=waves)
+                     sampler=sampler, output=folder, truth=dict(truth), raw=raw, waves=waves,
+                     prior_template=tpath)

@@ -50,6 +50,17 @@ SOURCE_OPTIONAL = ("origin_time",)
 RECEIVER_REQUIRED = ("receiver", "x", "y")
 VERTICAL = ("depth", "elevation")
 
+#: Column names other picking programs and spreadsheets use -> our column (for "did you mean" hints).
+COLUMN_SYNONYMS = {"offset": "distance", "dist": "distance", "phase": "wave", "t": "time", "tt": "time",
+                   "pick": "time", "traveltime": "time", "travel_time": "time", "unc": "sigma", "err": "sigma",
+                   "error": "sigma", "uncertainty": "sigma", "std": "sigma", "sd": "sigma"}
+#: What sigma is, for the message when the column is missing.
+SIGMA_HELP = ("sigma is the standard uncertainty of each pick, in seconds like the time column (typically "
+              "0.0002-0.002 s for hammer or shot refraction picks, 0.05-0.5 s for earthquake phases; common "
+              "practice). Without per-pick uncertainties, give one reasonable value for every pick and set "
+              "[noise] scale = \"free\" in the run description: a common multiplier of all sigmas is then "
+              "sampled (docs/likelihood.md)")
+
 # A plain decimal number: no NaN, inf, hex, underscores or thousands separators.
 _NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?\Z")
 _INTEGER = re.compile(r"\+?\d+\Z")
@@ -451,14 +462,18 @@ def _check_header(path, lineno, cells, kind, required, optional, vertical) -> li
     if missing:
         hints = []
         for m in missing:
+            same = [u for u in unknown if COLUMN_SYNONYMS.get(u) == m]
             close = difflib.get_close_matches(m, unknown, n=1, cutoff=0.6)
-            if close:
+            if same:
+                hints.append(f"did you mean '{m}' for column '{same[0]}'? rename it")
+            elif close:
                 hints.append(f"'{close[0]}' may be a typo for '{m}'")
         shown = ", ".join("'depth' or 'elevation'" if vertical and m == "depth" else f"'{m}'" for m in missing)
+        explain = f". {SIGMA_HELP}" if kind == "picks" and "sigma" in missing else ""
         raise DataError(path, lineno, missing[0],
                         f"the {kind} file lacks column(s) {shown}"
                         + (" (" + "; ".join(hints) + ")" if hints else "")
-                        + f"; columns found: {', '.join(names)}")
+                        + f"; columns found: {', '.join(names)}" + explain)
     if vertical and all(v in names for v in VERTICAL):
         raise DataError(path, lineno, "elevation", "give either 'depth' (positive down) or 'elevation' "
                                                    "(positive up), not both")
@@ -466,6 +481,8 @@ def _check_header(path, lineno, cells, kind, required, optional, vertical) -> li
         hints = []
         for u in unknown:
             close = difflib.get_close_matches(u, allowed, n=1, cutoff=0.6)
+            if COLUMN_SYNONYMS.get(u) in allowed:
+                close = [COLUMN_SYNONYMS[u]]
             hints.append(f"'{u}'" + (f" (did you mean '{close[0]}'?)" if close else ""))
         raise DataError(path, lineno, unknown[0], f"unknown column(s) {', '.join(hints)}; allowed columns "
                                                   f"in a {kind} file: {', '.join(allowed)}")

@@ -262,8 +262,8 @@ def _config_from_folder(run_dir: Path, resolved: dict) -> RunConfig:
         if resolved.get(key):
             data[key] = str(_absolute(resolved[key], start))
     raw["data"] = data
-    if isinstance(raw.get("prior_file"), str):
-        raw["prior_file"] = str(_absolute(raw["prior_file"], config_dir))
+    if isinstance(raw.get("prior_file"), str) and _absolute(raw["prior_file"], config_dir).exists():
+        raw["prior_file"] = str(_absolute(raw["prior_file"], config_dir))  # else the name of a shipped template
     raw["output"] = {**raw.get("output", {}), "folder": str(run_dir.resolve())}
     with tempfile.TemporaryDirectory(prefix="invert-report-") as tmp:
         tmp_path = Path(tmp) / "config.toml"
@@ -305,8 +305,8 @@ def read_run(run_dir) -> RunFolder:
         raise FileNotFoundError(f"{run_dir}: no such folder (give the output folder of 'invert run')")
     for name in _REQUIRED:
         if not (run_dir / name).exists():
-            raise FileNotFoundError(f"{run_dir / name}: file not found; is this the output folder of 'invert run' "
-                                    "and did the run finish?")
+            raise FileNotFoundError(f"{run_dir.resolve()} holds no {name}: is this the output folder of 'invert "
+                                    "run' (the [output] folder of the run description), and did the run finish?")
     resolved = _read_json(run_dir / "config_resolved.json")
     convergence = _read_json(run_dir / "convergence.json")
     config = _config_from_folder(run_dir, resolved)
@@ -651,8 +651,10 @@ def _section_run(an: _Analysis) -> list:
     s = cfg.sampler
     conv = run.convergence
     kept = conv.get("kept_steps")
+    # the steps actually taken (a resumed or --steps run differs from [sampler] steps in config.toml)
+    done = int(conv["burn"]) + int(kept) if isinstance(kept, int) and isinstance(conv.get("burn"), int) else s.steps
     items = [f"{s.ensembles} independent ensembles of {s.walkers} walkers (emcee; differential-evolution moves), "
-             f"{s.steps} steps each" + (f" (run until converged, at most {s.max_steps})" if s.until_converged
+             f"{done} steps each" + (f" (run until converged, at most {s.max_steps})" if s.until_converged
                                         else "") + f"; started from: {s.start}; seed {s.seed}.",
              f"Burn-in discarded: {conv.get('burn', s.burn)} steps; kept {kept} steps, thinned by "
              f"{conv.get('thin', s.thin)}: {an.n_total} posterior draws in all.",
@@ -661,6 +663,18 @@ def _section_run(an: _Analysis) -> list:
              "every draw."]
     out.append(_Items(items))
     return out
+
+
+def rhat_text(rhat: float, limit: float = 1.01, digits: int = 4) -> str:
+    """R-hat with at least ``digits`` decimals and as many more as it takes to fall on the same side of
+    ``limit`` as the exact value (1.0096 stays below 1.01 in print)."""
+    if not np.isfinite(rhat):
+        return f"{rhat}"
+    for d in range(digits, 12):
+        text = f"{rhat:.{d}f}"
+        if (float(text) < limit) == (rhat < limit):
+            return text
+    return repr(float(rhat))
 
 
 def _section_convergence(an: _Analysis) -> list:
@@ -683,7 +697,7 @@ def _section_convergence(an: _Analysis) -> list:
         r, eb, et = float(p["rhat"]), float(p["ess_bulk"]), float(p["ess_tail"])
         tau, mult = float(p["tau"]), float(p["run_over_tau"])
         ok = r < max_rhat and eb > min_ess and et > min_ess and mult > min_tau
-        rows.append([name, f"{r:.3f}", _num(eb, 3), _num(et, 3), _num(tau, 3), _num(mult, 3),
+        rows.append([name, rhat_text(r, max_rhat), _num(eb, 3), _num(et, 3), _num(tau, 3), _num(mult, 3),
                      "yes" if ok else "NO"])
     out.append(_Table(["parameter", "R-hat", "bulk ESS", "tail ESS", "autocorrelation time [steps]",
                        "run / autocorrelation time", "meets targets"], rows,
@@ -1424,7 +1438,7 @@ COMPARISON_CAUTIONS = (
 
 
 def comparison_kind(folder) -> str | None:
-    """``'comparison'`` or ``'lvz'`` if ``folder`` was written by ``invert compare`` or ``invert lvz-test``, else None."""
+    """``'comparison'`` or ``'lvz'`` for a folder of ``invert compare`` or ``invert lvz-test``, else None."""
     folder = Path(folder)
     if (folder / "comparison.json").is_file():
         return "comparison"
@@ -1462,7 +1476,8 @@ def _estimate_rows(estimates: dict) -> list:
                 continue
             d = r.get("details", {})
             if key == "nested":
-                setting = f"{d.get('live_points', '?')} live points, information {_f(d.get('information_nats'), 1)} nats"
+                setting = (f"{d.get('live_points', '?')} live points, information "
+                           f"{_f(d.get('information_nats'), 1)} nats")
             else:
                 setting = (f"{len(d.get('ladder', [])) - 1} rungs × ({d.get('burn', '?')} + {d.get('steps', '?')}) "
                            f"steps, {d.get('walkers', '?')} walkers")

@@ -31,8 +31,13 @@ from .problem import Problem, build_problem, select_waves
 from .sample import (ConvergenceReport, SamplerResult, convergence_report, initial_around, initial_from_prior,
                      run_ensembles)
 
-#: Most (draw x point) values stored in the pointwise log-likelihood group.
-MAX_POINTWISE_VALUES = 4_000_000
+#: Most (draw x pick) values stored in each array of the pointwise log-likelihood and posterior
+#: predictive groups (about 8 MB each before compression)...
+MAX_POINTWISE_VALUES = 1_000_000
+#: ... unless that leaves fewer draws than this (PSIS-LOO wants a few thousand draws; Vehtari, Gelman &
+#: Gabry, Stat. Comput. 27, 2017), in which case up to POINTWISE_CEILING values are kept.
+MIN_POINTWISE_DRAWS = 2000
+POINTWISE_CEILING = 4_000_000
 #: Draws of the prior stored for prior-vs-posterior comparisons.
 PRIOR_DRAWS = 2000
 
@@ -105,6 +110,77 @@ def fingerprint(config: RunConfig) -> str:
     if config.waves is not None:  # only when set, so runs without [data] waves keep their fingerprints
         h.update(repr(config.waves).encode())
     return h.hexdigest()[:16]
+
+
+def fingerprint_parts(config: RunConfig) -> dict[str, str]:
+    """Separate hashes of the picks, priors, model and noise settings behind :func:`fingerprint`.
+
+    Stored in the checkpoint so that a refused resume can name what changed.
+    """
+    def digest(*items) -> str:
+        h = hashlib.sha256()
+        for item in items:
+            h.update(item if isinstance(item, bytes) else str(item).encode())
+        return h.hexdigest()[:16]
+
+    files = [Path(p).read_bytes() for p in (config.picks, config.sources, config.receivers) if p is not None]
+    return {"picks": digest(*files, repr(config.waves)),
+            "priors": digest(json.dumps(config.prior, sort_keys=True, default=str),
+                             json.dumps(config.constraints, sort_keys=True, default=str)),
+            "model": digest(repr(config.layers), config.units),
+            "noise": digest(repr(config.noise), repr(config.nuisance))}
+
+
+#: What each part of :func:`fingerprint_parts` covers, in words.
+PART_WORDS = {"picks": "the picks (data files or [data] waves)",
+              "priors": "the priors ([prior], [constraints] or the prior template)",
+              "model": "the model ([model] or units)",
+              "noise": "the noise or nuisance settings ([noise], [nuisance])"}
+
+
+def resume_mismatch(checkpoint: Path, config: RunConfig, problem: Problem) -> str:
+    """Why the run in ``checkpoint`` cannot be resumed with ``config`` ("" when it can)."""
+    from .sample import checkpoint_settings
+
+    saved = checkpoint_settings(checkpoint)
+    changed, details = [], []
+    if saved["fingerprint"] != fingerprint(config):
+        old = saved["fingerprint_parts"]
+        if old:
+            now = fingerprint_parts(config)
+            changed += [PART_WORDS.get(k, k) for k in now if old.get(k) != now[k]]
+        if not changed:
+            changed.append("the picks, priors or settings")
+    if tuple(saved["parameter_names"]) != tuple(problem.names) and not changed:
+        changed.append("the model")
+        details.append(f"free parameters {', '.join(saved['parameter_names'])} then, {', '.join(problem.names)} now")
+    s = config.sampler
+    sampler = [f"{key} = {then} then, {now} now" for key, then, now in
+               (("ensembles", saved["n_ensembles"], s.ensembles), ("walkers", saved["n_walkers"], s.walkers),
+                ("seed", saved["seed"], s.seed)) if then != now]
+    if sampler:
+        changed.append("the [sampler] settings")
+        details += sampler
+    if not changed:
+        return ""
+    what = ", ".join(changed[:-1]) + (" and " if len(changed) > 1 else "") + changed[-1]
+    return (f"cannot resume the run in {checkpoint.parent}: {what} changed since it was started"
+            + (f" ({'; '.join(details)})" if details else "")
+            + ". Start it again with --overwrite (the samples so far are discarded), or set another [output] "
+              "folder to keep both runs")
+
+
+def suggested_steps(result: SamplerResult, report: ConvergenceReport) -> int:
+    """Steps per ensemble to ask for when a run did not converge (rounded up to hundreds).
+
+    At least twice the current length, and long enough that the kept part spans
+    the target number of the largest autocorrelation time with a 20% margin.
+    """
+    tau = np.asarray(report.tau, dtype=float)
+    tau_max = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else 0.0
+    need = report.burn + 1.2 * report.targets.min_tau_multiple * tau_max
+    n = max(2 * result.n_steps, int(np.ceil(need)))
+    return int(np.ceil(n / 100.0) * 100)
 
 
 def default_moves():
@@ -212,7 +288,8 @@ def starting_points(problem: Problem, config: RunConfig, rng: np.random.Generato
     return initial_from_prior(problem.sample_prior, s.ensembles, s.walkers, rng, log_prob=problem.log_prob)
 
 
-def classic_start(problem: Problem, quiet: bool = True, reasons: list | None = None):
+def classic_start(problem: Problem, quiet: bool = True, reasons: list | None = None,
+                  velocities: list | None = None):
     """A starting point from the intercept-time method, or None where it does not apply.
 
     Uses the P first arrivals of the source with the most surface-to-surface
@@ -223,7 +300,8 @@ def classic_start(problem: Problem, quiet: bool = True, reasons: list | None = N
     are replaced by the prior median. The estimate is printed as a sanity check.
 
     When None is returned, one sentence saying why (and whether an estimate was
-    printed) is appended to ``reasons`` if a list is given.
+    printed) is appended to ``reasons`` if a list is given. The estimate's
+    velocities [length unit / s] are appended to ``velocities`` if a list is given.
     """
     from .classic import intercept_time_estimate
 
@@ -249,6 +327,8 @@ def classic_start(problem: Problem, quiet: bool = True, reasons: list | None = N
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         est = intercept_time_estimate(picks.distance[sel], picks.travel_time[sel], n_segments=n_seg)
+    if velocities is not None:
+        velocities.append(np.asarray(est.velocities, dtype=float))
     _say(f"Intercept-time estimate from source {picks.source_names[src]} (sanity check):\n"
          f"{est.summary(problem.units)}", quiet)
     for w in caught:
@@ -309,6 +389,147 @@ def data_checks(picks: PickSet) -> list[str]:
     return [m for m in out if m]
 
 
+#: Velocities [m/s] outside which P and S travel times are implausible for earth materials
+#: (common practice: Vp from about 100 m/s in loose dry soil to about 14 km/s in the deep mantle,
+#: Vs from a few tens of m/s in very soft soil or peat); used only to warn about unit mix-ups.
+PLAUSIBLE_VELOCITY = {"P": (50.0, 15000.0), "S": (20.0, 10000.0)}
+#: "Far outside" the prior: apparent velocities more than this factor below or above its vp range.
+PRIOR_FACTOR = 3.0
+
+
+def apparent_velocities(picks: PickSet, planet_radius: float | None = None) -> dict[str, np.ndarray]:
+    """Straight-line source-receiver distance over travel time, per wave, for first-arriving picks.
+
+    For a first arrival the straight line is the shortest path, so this ratio lies
+    between the slowest and the fastest velocity the wave meets (Fermat's principle).
+    Reflections (and picks with unknown origin times or zero distance) are left out.
+
+    Parameters
+    ----------
+    picks : PickSet
+        The picks (distances in the run's length unit, times in s).
+    planet_radius : float, optional
+        Planet radius [km] of a spherical model; distances are then arc lengths
+        and the straight line is the chord.
+
+    Returns
+    -------
+    dict
+        Wave name -> (k,) apparent velocities [length unit / s].
+    """
+    zs = np.asarray(picks.source_depth, dtype=float)
+    zr = np.asarray(picks.receiver_depth, dtype=float)
+    x = np.asarray(picks.distance, dtype=float)
+    if planet_radius:
+        rs, rr = planet_radius - zs, planet_radius - zr
+        length = np.sqrt(np.maximum(rs**2 + rr**2 - 2 * rs * rr * np.cos(x / planet_radius), 0.0))
+    else:
+        length = np.hypot(x, zr - zs)
+    t = np.asarray(picks.travel_time, dtype=float)
+    ok = (picks.branch != "reflection") & np.isfinite(length) & np.isfinite(t) & (t > 0) & (length > 0)
+    return {w: length[ok & (picks.wave == w)] / t[ok & (picks.wave == w)] for w in ("P", "S")
+            if np.any(ok & (picks.wave == w))}
+
+
+def _likely_cause(direction: str, units: str, picks: PickSet) -> str:
+    """One sentence naming the probable unit mix-up and what to do about it."""
+    if direction == "slow":
+        causes = ["times (and sigma) in milliseconds instead of seconds -- divide both columns by 1000"]
+        if units == "m":
+            causes.append('distances in kilometres while the run description says units = "m" -- set '
+                          'units = "km" and give the priors in km and km/s, or convert the distances to metres')
+        sig = float(np.median(picks.sigma))
+        extra = (f" The median sigma, {sig:.3g} s, is also large for a pick uncertainty, which points to "
+                 "milliseconds.") if sig >= 0.05 and units == "m" else ""
+        return "Likely cause: " + "; or ".join(causes) + "." + extra
+    if units == "km":
+        return ('Likely cause: distances in metres while the run description says units = "km" -- set '
+                'units = "m" and give the priors in m and m/s, or convert the distances to kilometres.')
+    return ("Likely cause: distances in a unit smaller than metres, or times in a unit larger than seconds; "
+            "the picks need distances in the run's length unit (the units key) and times in seconds.")
+
+
+def plausibility_warnings(problem: Problem, classic_velocities=None) -> list[str]:
+    """Warnings when the picks' velocities do not fit the units or the priors (empty when they do).
+
+    Compares the median apparent velocity of every wave (:func:`apparent_velocities`)
+    and the intercept-time velocities (if given) with plausible velocities of earth
+    materials (:data:`PLAUSIBLE_VELOCITY`, converted to the run's units) and the
+    P velocities with the range of the ``vp_k`` priors. A factor of 1000 off
+    points to times in ms or distances in the wrong length unit.
+
+    Parameters
+    ----------
+    problem : Problem
+        The inversion problem (picks, priors, units).
+    classic_velocities : array, optional
+        Velocities of the intercept-time estimate [length unit / s].
+    """
+    units = problem.units
+    scale = 1.0 if units == "m" else 1e-3  # m/s -> the run's velocity unit
+    vu = f"{units}/s"
+    radius = getattr(problem.layers, "planet_radius", None) if problem.sphere else None
+    apparent = apparent_velocities(problem.picks, radius)
+    vp_names = [n for n in problem.prior.priors if n.startswith("vp_")]
+    prior_lo = prior_hi = None
+    if vp_names:
+        ends = []
+        for n in vp_names:
+            d = problem.prior.priors[n]
+            ends += ([float(d.ppf(1e-3)), float(d.ppf(1 - 1e-3))] if hasattr(d, "ppf") else [float(d.value)] * 2)
+        prior_lo, prior_hi = min(ends), max(ends)
+    out = []
+    for wave, v in apparent.items():
+        lo, hi = (b * scale for b in PLAUSIBLE_VELOCITY[wave])
+        med = float(np.median(v))
+        q = np.percentile(v, [5, 95])
+        direction = "slow" if med < lo else "fast" if med > hi else ""
+        against = f"what earth materials have ({lo:g}-{hi:g} {vu} for {wave}; common practice)"
+        if not direction and wave == "P" and prior_lo is not None:
+            if med < prior_lo / PRIOR_FACTOR or med > prior_hi * PRIOR_FACTOR:
+                direction = "slow" if med < prior_lo / PRIOR_FACTOR else "fast"
+                against = f"the prior's P velocities ({prior_lo:.4g}-{prior_hi:.4g} {vu})"
+        if not direction:
+            continue
+        t = np.asarray(problem.picks.travel_time, dtype=float)
+        t_max = float(np.nanmax(t)) if np.any(np.isfinite(t)) else float("nan")
+        x_max = float(np.nanmax(problem.picks.distance))
+        cause = _likely_cause(direction, units, problem.picks)
+        if against.startswith("the prior"):
+            cause = (f"Likely cause: the priors are written in other units than the picks (with units = "
+                     f"{units!r} they must be in {units} and {vu}), or " + cause[len("Likely cause: "):])
+        out.append(
+            f"WARNING: implausible {wave} velocities: the {wave} picks imply apparent velocities "
+            f"(straight-line distance / travel time) of {q[0]:.3g}-{q[1]:.3g} {vu} (median {med:.3g} {vu}; "
+            f"travel times up to {t_max:.4g} s over distances up to {x_max:.4g} {units}), far "
+            f"{'below' if direction == 'slow' else 'above'} {against}. "
+            + cause
+            + " Fix the files or the units key and run 'invert check' again; an inversion of these numbers "
+              "as they are would not describe the site.")
+    if classic_velocities is not None and not out:
+        v = np.asarray(classic_velocities, dtype=float)
+        v = v[np.isfinite(v)]
+        lo, hi = (b * scale for b in PLAUSIBLE_VELOCITY["P"])
+        if v.size and (v.max() < lo or v.min() > hi):
+            direction = "slow" if v.max() < lo else "fast"
+            out.append(f"WARNING: the intercept-time P velocities ({', '.join(f'{x:.3g}' for x in v)} {vu}) lie "
+                       f"far {'below' if direction == 'slow' else 'above'} what earth materials have "
+                       f"({lo:g}-{hi:g} {vu}; common practice). "
+                       + _likely_cause(direction, units, problem.picks))
+    return out
+
+
+def prior_support_error(problem: Problem, rng: np.random.Generator | None = None, n: int = 256) -> str:
+    """A sentence when no prior draw gives a usable model for these picks ("" when some do)."""
+    rng = np.random.default_rng(0) if rng is None else rng
+    draws = valid_prior_draws(problem, 1, rng, max_rounds=max(1, n // 64))
+    if draws.shape[0]:
+        return ""
+    return (f"the prior has zero support for these picks: none of {max(1, n // 64) * 64} prior draws gives a "
+            "model with a finite posterior (a valid layer model that predicts every pick); widen the priors or "
+            "relax the constraints, and check the units of the picks")
+
+
 def prepare_folder(folder: Path, resume: bool, overwrite: bool) -> None:
     """Create the output folder; refuse to mix a new run into an old one."""
     folder = Path(folder)
@@ -324,7 +545,7 @@ def prepare_folder(folder: Path, resume: bool, overwrite: bool) -> None:
 
 
 def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False, progress: bool = True,
-                  quiet: bool = False, steps: int | None = None) -> RunOutput:
+                  quiet: bool = False, steps: int | None = None, report_hint: bool = True) -> RunOutput:
     """Run the inversion described by ``config_path`` and write its folder.
 
     Parameters
@@ -341,6 +562,8 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
         Print nothing but errors.
     steps : int, optional
         Override ``[sampler] steps``.
+    report_hint : bool
+        End with the command that writes the report (False when the caller writes it).
     """
     config = load_config(config_path)
     if steps is not None:
@@ -359,6 +582,13 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
     problem = build_problem(config, picks)
     _say(f"Model: {config.layers.n_layers} layer(s) over a half-space; {problem.ndim} free parameters: "
          f"{', '.join(problem.names)}", quiet)
+    for message in plausibility_warnings(problem):
+        print(message, file=sys.stderr, flush=True)
+    support = prior_support_error(problem)
+    if support:
+        from .config import ConfigError
+
+        raise ConfigError(config.path, "prior", support)
     if config.sampler.walkers < 2 * problem.ndim:
         from .config import ConfigError
 
@@ -369,6 +599,20 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
     folder = Path(config.output)
     prepare_folder(folder, resume, overwrite)
     s = config.sampler
+    checkpoint = folder / "checkpoint.h5"
+    if resume and checkpoint.exists():
+        from .config import ConfigError
+        from .sample import checkpoint_settings
+
+        why = resume_mismatch(checkpoint, config, problem)
+        if why:
+            raise ConfigError(config.path, "", why)
+        saved = checkpoint_settings(checkpoint)
+        if steps is not None and int(steps) < saved["target_steps"]:
+            _say(f"note: --steps {int(steps)} is fewer than the {saved['target_steps']} steps per ensemble this run "
+                 f"already has or was set to reach ({max(saved['steps'])} done); the run continues to "
+                 f"{saved['target_steps']} steps. To continue further, give a larger --steps; to take fewer, "
+                 "start again with --overwrite.", quiet)
     rng = np.random.default_rng(s.seed)
     initial = None if resume else starting_points(problem, config, rng, quiet=quiet)
     with chain_layout_warning_off():
@@ -377,13 +621,20 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
                                checkpoint_every=s.checkpoint_every, until=True if s.until_converged else None,
                                max_steps=s.max_steps if s.until_converged else None,
                                parameter_names=problem.names, fingerprint=fingerprint(config),
-                               moves=default_moves())
+                               fingerprint_parts=fingerprint_parts(config), moves=default_moves())
         burn = s.burn if not s.until_converged else None
         report = convergence_report(result, burn=burn, thin=s.thin)
         summary = write_outputs(folder, config, problem, result, report, rng)
     _say(report.summary(), quiet)
-    _say(f"Results written to {folder}/ (posterior.nc, summary.csv, convergence.txt); "
-         f"make the report with: invert report {folder}", quiet)
+    if not report.converged:
+        if s.until_converged:
+            _say(f"To continue: raise [sampler] max_steps (now {s.max_steps}) in {config.path} and run: "
+                 f"invert run {config.path} --resume", quiet)
+        else:
+            _say(f"To continue this run: invert run {config.path} --resume --steps "
+                 f"{suggested_steps(result, report)}", quiet)
+    _say(f"Results written to {folder}/ (posterior.nc, summary.csv, convergence.txt)"
+         + (f"; make the report with: invert report {folder}" if report_hint else ""), quiet)
     return RunOutput(folder, config, problem, result, report, summary)
 
 
@@ -431,7 +682,9 @@ def build_inference_data(problem: Problem, config: RunConfig, result: SamplerRes
     posterior.update({k: v.reshape(c, n) for k, v in derived.items()})
     # pointwise log likelihood and posterior predictive on a thinned subset of draws
     n_points = {"pick": problem.picks.n_picks, "event": problem.picks.n_sources, "total": 1}[problem.pointwise_kind]
-    step = max(1, int(np.ceil(c * n * max(n_points, problem.picks.n_picks) / MAX_POINTWISE_VALUES)))
+    width = max(n_points, problem.picks.n_picks)
+    draws = max(MAX_POINTWISE_VALUES / width, min(MIN_POINTWISE_DRAWS, POINTWISE_CEILING / width))
+    step = max(1, int(np.ceil(c * n / draws)))
     sub = samples[:, ::step]
     cs, ns, _ = sub.shape
     sub_flat = sub.reshape(cs * ns, d)

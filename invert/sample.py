@@ -448,6 +448,8 @@ def _fill_checkpoint(f: h5py.File, settings: dict, initial: np.ndarray, target_s
     f.attrs["n_dim"] = settings["n_dim"]
     f.attrs["seed"] = str(settings["seed"])
     f.attrs["fingerprint"] = settings["fingerprint"]
+    if settings.get("fingerprint_parts"):
+        f.attrs["fingerprint_parts"] = json.dumps(dict(settings["fingerprint_parts"]), sort_keys=True)
     f.attrs["parameter_names"] = json.dumps(list(settings["parameter_names"]))
     f.attrs["blob_width"] = settings["blob_width"]
     f.attrs["target_steps"] = int(target_steps)
@@ -521,6 +523,35 @@ def _read_checkpoint(path: Path) -> dict:
     return {"settings": settings, "initial": initial, "target_steps": target_steps, "snapshots": snapshots}
 
 
+def checkpoint_settings(path) -> dict:
+    """The settings stored in checkpoint ``path`` (attributes only; the chains are not read).
+
+    Returns a dict with ``n_ensembles``, ``n_walkers``, ``n_dim``, ``seed``,
+    ``fingerprint``, ``fingerprint_parts`` (dict; empty for checkpoints written
+    without them), ``parameter_names``, ``target_steps`` and ``steps`` (completed
+    steps per ensemble, a list).
+    """
+    path = Path(path)
+    try:
+        f = h5py.File(path, "r")
+    except OSError as exc:
+        raise ValueError(f"cannot read checkpoint {path}: not a readable HDF5 file ({exc})") from None
+    with f:
+        try:
+            if f.attrs.get("format") != CHECKPOINT_FORMAT:
+                raise ValueError(f"cannot read checkpoint {path}: not a checkpoint of this program")
+            n_ens = int(f.attrs["n_ensembles"])
+            parts = f.attrs.get("fingerprint_parts")
+            return {"n_ensembles": n_ens, "n_walkers": int(f.attrs["n_walkers"]), "n_dim": int(f.attrs["n_dim"]),
+                    "seed": int(f.attrs["seed"]), "fingerprint": str(f.attrs["fingerprint"]),
+                    "fingerprint_parts": json.loads(parts) if parts else {},
+                    "parameter_names": tuple(json.loads(f.attrs["parameter_names"])),
+                    "target_steps": int(f.attrs["target_steps"]),
+                    "steps": [int(f[f"ensemble_{e}"].attrs["steps"]) for e in range(n_ens)]}
+        except (KeyError, TypeError, json.JSONDecodeError) as exc:
+            raise ValueError(f"cannot read checkpoint {path}: missing or malformed entry ({exc})") from None
+
+
 def checkpoint_steps(path) -> np.ndarray:
     """Completed steps of each ensemble stored in checkpoint ``path``, shape (ensembles,)."""
     data = _read_checkpoint(Path(path))
@@ -542,7 +573,7 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
                   resume: bool = False, progress: bool = True, checkpoint_every: int | None = None,
                   checkpoint_seconds: float = 30.0, until=None, max_steps: int | None = None,
                   parameter_names: Sequence[str] | None = None, moves=None,
-                  fingerprint: str = "") -> SamplerResult:
+                  fingerprint: str = "", fingerprint_parts: dict | None = None) -> SamplerResult:
     """Run independent emcee ensembles with checkpoints; optionally until converged.
 
     Parameters
@@ -589,6 +620,9 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
     fingerprint : str
         Any text that identifies the problem (data, prior, model); a checkpoint
         with another fingerprint is refused on resume.
+    fingerprint_parts : dict, optional
+        Name -> hash of each part behind ``fingerprint`` (stored in the
+        checkpoint so that a refused resume can say which part changed).
 
     Returns
     -------
@@ -651,7 +685,8 @@ def run_ensembles(log_prob: Callable, initial, n_steps: int, *, seed: int, check
         raise ValueError("initial positions contain NaN or infinite values")
     names = _parameter_names(parameter_names, n_dim)
     settings = {"n_ensembles": n_ens, "n_walkers": n_walkers, "n_dim": n_dim, "seed": seed,
-                "fingerprint": str(fingerprint), "parameter_names": names, "blob_width": None}
+                "fingerprint": str(fingerprint), "parameter_names": names, "blob_width": None,
+                "fingerprint_parts": dict(fingerprint_parts or {})}
     target = n_steps
     if saved is not None:
         problems = _settings_mismatch(saved["settings"], settings)
@@ -806,7 +841,9 @@ def _progress_bar(show: bool, total: int, initial: int):
         return _NoBar(total, initial)
     from tqdm import tqdm
 
-    return tqdm(total=total, initial=initial, unit="step", desc="sampling", smoothing=0.05, dynamic_ncols=True)
+    # disable=None: no bar when stderr is not a terminal (logs get no carriage-return updates)
+    return tqdm(total=total, initial=initial, unit="step", desc="sampling", smoothing=0.05, dynamic_ncols=True,
+                disable=None)
 
 
 def _ensemble_moves(moves) -> bool:

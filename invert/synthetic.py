@@ -23,6 +23,8 @@ picks = "picks.csv"
 
 from __future__ import annotations
 
+import difflib
+
 import tomllib
 from pathlib import Path
 
@@ -36,12 +38,24 @@ from .model import LayerModel
 SURVEY_KINDS = ("line", "borehole", "network", "global")
 
 
+def _unknown_keys(keys, allowed) -> str:
+    """'unknown key(s) ...' with a "did you mean" for near misses, as for run descriptions ("" if none)."""
+    unknown = sorted(set(keys) - set(allowed))
+    if not unknown:
+        return ""
+    hints = []
+    for key in unknown:
+        close = difflib.get_close_matches(key, sorted(allowed), n=1)
+        hints.append(f"{key!r}" + (f" (did you mean {close[0]!r}?)" if close else ""))
+    return f"unknown key(s) {', '.join(hints)}; allowed: {', '.join(sorted(allowed))}"
+
+
 def model_from_table(table: dict, where: str = "model") -> LayerModel:
     """LayerModel from ``thickness``, ``vp``, ``vpvs`` or ``vs``, optional ``gradient`` lists."""
     allowed = {"thickness", "vp", "vpvs", "vs", "gradient"}
-    unknown = set(table) - allowed
-    if unknown:
-        raise ValueError(f"[{where}] unknown key(s) {', '.join(sorted(unknown))}; allowed: {', '.join(sorted(allowed))}")
+    message = _unknown_keys(table, allowed)
+    if message:
+        raise ValueError(f"[{where}] {message}")
     for key in ("thickness", "vp"):
         if key not in table:
             raise ValueError(f"[{where}] missing {key!r}")
@@ -263,10 +277,11 @@ def make_synthetic(spec_path) -> Path:
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(spec_path, "", f"not valid TOML: {exc}") from None
     allowed = {"title", "units", "seed", "model", "survey", "output"}
-    unknown = set(spec) - allowed
-    if unknown:
-        raise ConfigError(spec_path, "", f"unknown key(s) {', '.join(sorted(unknown))}; allowed: "
-                                         f"{', '.join(sorted(allowed))}")
+    message = _unknown_keys(spec, allowed)
+    if message:
+        raise ConfigError(spec_path, "", message)
+    if isinstance(spec.get("output"), dict) and _unknown_keys(spec["output"], {"picks"}):
+        raise ConfigError(spec_path, "output", _unknown_keys(spec["output"], {"picks"}))
     try:
         model = model_from_table(spec.get("model", {}))
         survey = spec.get("survey", {})

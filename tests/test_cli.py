@@ -340,3 +340,184 @@ def test_check_with_waves_keeps_only_those_picks(good, capsys):
     assert main(["check", str(good)]) == 2
     err = capsys.readouterr().err
     assert str(good) in err and "[data] waves" in err and "unknown wave 'Q'" in err
+
+
+# ---------------------------------------------------------------------------- unit mix-ups (newcomer trial)
+def _scaled(text: str, columns, factor: float) -> str:
+    """LINE_PICKS with the given columns multiplied by ``factor`` (a unit mix-up)."""
+    out, header = [], None
+    for line in text.splitlines():
+        if line.startswith("#"):
+            out.append(line)
+            continue
+        cells = line.split(",")
+        if header is None:
+            header = cells
+        else:
+            for c in columns:
+                i = header.index(c)
+                cells[i] = repr(float(cells[i]) * factor)
+        out.append(",".join(cells))
+    return "\n".join(out) + "\n"
+
+
+KM_RUN = (GOOD_RUN.replace('units = "m"', 'units = "km"')
+          .replace("low = 1.0, high = 15.0", "low = 0.001, high = 0.015")
+          .replace("low = 200.0, high = 1200.0", "low = 0.2, high = 1.2")
+          .replace("low = 1000.0, high = 3000.0", "low = 1.0, high = 3.0"))
+
+
+def test_check_good_picks_give_no_unit_warning(good, capsys):
+    # LINE_PICKS: 600 m/s over 1800 m/s, inside 50 m/s - 15 km/s for P (common practice)
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "WARNING" not in out and "Everything reads and checks out" in out
+
+
+def test_check_warns_when_times_are_in_milliseconds(good, capsys):
+    # the same picks with time and sigma in ms: apparent velocities 0.6-0.9 m/s
+    (good.parent / "picks.csv").write_text(_scaled(LINE_PICKS, ["time", "sigma"], 1000.0))
+    assert main(["check", str(good)]) == 0  # a warning, not a refusal
+    out = capsys.readouterr().out
+    assert "WARNING" in out and "milliseconds" in out and "divide both columns by 1000" in out
+    assert "Everything reads and checks out" not in out
+
+
+def test_check_warns_when_distances_are_in_km_with_units_m(good, capsys):
+    (good.parent / "picks.csv").write_text(_scaled(LINE_PICKS, ["distance"], 1e-3))
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "WARNING" in out and "kilometres" in out and 'units = "m"' in out
+    assert "Everything reads and checks out" not in out
+
+
+def test_check_warns_when_distances_are_in_m_with_units_km(good, capsys):
+    good.write_text(KM_RUN)  # priors in km and km/s, but the picks' distances are still metres
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "WARNING" in out and "metres" in out and 'units = "km"' in out
+    assert "600-905 km/s" in out  # 3 m / 0.005 s ... 30 m / 0.0324 s read as km
+
+
+def test_check_warns_when_velocities_are_far_outside_the_prior(good, capsys):
+    # picks right for metres, but the prior written in km/s numbers (0.2-3) with units = "m"
+    good.write_text(KM_RUN.replace('units = "km"', 'units = "m"').replace("low = 0.001, high = 0.015",
+                                                                          "low = 1.0, high = 15.0"))
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert "WARNING" in out and "the prior's P velocities" in out and "priors are written in other units" in out
+
+
+def test_run_warns_about_units_at_the_start(good, capsys):
+    (good.parent / "picks.csv").write_text(_scaled(LINE_PICKS, ["time", "sigma"], 1000.0))
+    assert main(["run", str(good), "--steps", "20", "--no-progress"]) == 0
+    captured = capsys.readouterr()
+    assert "WARNING" in captured.err and "milliseconds" in captured.err
+
+
+def test_check_refuses_a_prior_with_zero_support(good, capsys):
+    # head waves from the base of a layer at least 10 m thick appear only beyond the critical
+    # distance 2 h tan(asin(v1 / v2)) >= 2 * 10 * 200 / sqrt(3000**2 - 200**2) = 1.34 m (Telford,
+    # Geldart & Sheriff, Applied Geophysics, 2nd ed., 1990, sec. 4.2; from memory): picks at
+    # 0.5 and 1 m have no model under this prior
+    (good.parent / "picks.csv").write_text(
+        "source,receiver,wave,time,sigma,distance,source_depth,receiver_depth,branch,interface\n"
+        "A,g01,P,0.0200,0.0005,0.5,0,0,head,1\nA,g02,P,0.0210,0.0005,1.0,0,0,head,1\n")
+    good.write_text(GOOD_RUN.replace("low = 1.0, high = 15.0", "low = 10.0, high = 15.0"))
+    assert main(["check", str(good)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "zero support" in err
+
+
+# ---------------------------------------------------------------------------- resume
+@pytest.mark.parametrize("change, words", [
+    ("picks", "the picks"),
+    ("prior", "the priors"),
+    ("walkers", "walkers = 12 then, 14 now"),
+])
+def test_resume_after_a_change_is_a_clean_error(good, capsys, change, words):
+    assert main(["run", str(good), "--quiet", "--no-progress"]) == 0
+    if change == "picks":
+        (good.parent / "picks.csv").write_text(LINE_PICKS.replace("A,g10,P,0.0324", "A,g10,P,0.0330"))
+    elif change == "prior":
+        good.write_text(GOOD_RUN.replace("high = 3000.0", "high = 3500.0"))
+    else:
+        good.write_text(GOOD_RUN.replace("walkers = 12", "walkers = 14"))
+    assert main(["run", str(good), "--resume", "--quiet", "--no-progress"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "Traceback" not in err
+    assert "cannot resume" in err and words in err and "--overwrite" in err and "[output] folder" in err
+
+
+def test_not_converged_ends_with_the_command_to_continue(good, capsys):
+    assert main(["run", str(good), "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "NOT converged" in out
+    match = re.search(r"invert run \S+run\.toml --resume --steps (\d+)", out)
+    assert match and int(match.group(1)) >= 2 * 40  # at least twice the 40 steps taken
+
+
+def test_resume_with_fewer_steps_says_so_and_report_states_the_real_length(good, capsys):
+    assert main(["run", str(good), "--quiet", "--no-progress"]) == 0  # 40 steps
+    assert main(["run", str(good), "--resume", "--steps", "80", "--no-progress"]) == 0
+    assert main(["run", str(good), "--resume", "--steps", "30", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "--steps 30 is fewer than the 80 steps" in out
+    assert main(["report", str(good.parent / "run"), "--png"]) == 0
+    assert f"PNG files to {good.parent / 'run' / 'figures'}" in capsys.readouterr().out
+    md = (good.parent / "run" / "report.md").read_text()
+    assert "80 steps each" in md and "40 steps each" not in md
+
+
+# ---------------------------------------------------------------------------- small things
+def test_version_option(capsys):
+    from invert import __version__
+
+    with pytest.raises(SystemExit) as info:
+        main(["--version"])
+    assert info.value.code == 0 and __version__ in capsys.readouterr().out
+
+
+def test_report_of_a_folder_without_a_run_names_the_folder(tmp_path, capsys, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    assert main(["report", "."]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and str(tmp_path) in err
+
+
+def test_synth_unknown_key_suggests_the_near_match(tmp_path, capsys):
+    spec = tmp_path / "survey.toml"
+    spec.write_text(LINE_SPEC.replace("seed =", "sed ="))
+    assert main(["synth", str(spec)]) == 2
+    err = capsys.readouterr().err
+    assert "'sed'" in err and "did you mean 'seed'" in err
+
+
+def test_progress_bar_stays_silent_when_stderr_is_not_a_terminal(monkeypatch):
+    import io
+
+    from invert.sample import _progress_bar
+
+    fake = io.StringIO()  # not a terminal, like a log file
+    monkeypatch.setattr(sys, "stderr", fake)
+    bar = _progress_bar(True, 10, 0)
+    for _ in range(10):
+        bar.update(1)
+    bar.close()
+    assert "\r" not in fake.getvalue() and fake.getvalue() == ""
+
+
+def test_report_option_leaves_out_the_make_the_report_hint(good, capsys):
+    from invert.run import run_inversion
+
+    run_inversion(good, progress=False, report_hint=False)
+    assert "make the report with" not in capsys.readouterr().out
+
+
+def test_check_prints_the_shipped_prior_template_it_read(good, capsys):
+    text = GOOD_RUN.split("[prior]")[0].replace('[model]\nlayers = 1\nvpvs_mode = "none"\n', "")
+    good.write_text('prior_file = "shallow_site"\n' + text + GOOD_RUN[GOOD_RUN.index("[sampler]"):])
+    assert main(["check", str(good)]) == 0
+    out = capsys.readouterr().out
+    line = next(x for x in out.splitlines() if x.startswith("Prior template: "))
+    assert line.endswith("shallow_site.toml") and Path(line.split(": ", 1)[1]).is_file()

@@ -223,7 +223,7 @@ CASES = [
     ("event-depth-not-a-table", {"nuisance.event_depth": 5.0}, "nuisance", ["event_depth = 5.0", "a prior table"]),
     ("delay-negative", {"nuisance.receiver_delay_sd": -0.1}, "nuisance", ["receiver_delay_sd = -0.1", ">= 0"]),
     # units
-    ("units-missing", {"units": DELETE}, "", ["units = None", "'m'", "'km'"]),
+    ("units-missing", {"units": DELETE}, "", ["missing key 'units'", "'m'", "'km'"]),
     ("units-unknown", {"units": "ft"}, "", ["units = 'ft'", "'m'", "'km'"]),
     ("units-differ-from-template", {"prior_file": "template_km.toml", "prior": DELETE}, "",
      ["units = 'm'", "template_km.toml", "'km'"]),
@@ -333,6 +333,34 @@ def test_template_supplies_units_and_prior(folder):
     config, problem = load_and_build(path)
     assert config.units == "km"
     assert problem.names[:4] == ["thickness_1", "vp_1", "vp_2", "vpvs"]
+
+
+def test_empty_run_description_says_it_is_empty(tmp_path):
+    path = tmp_path / "run.toml"
+    path.write_text("# nothing yet\n")
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: ") and "empty" in message and "None" not in message
+
+
+def test_shipped_prior_template_by_name_from_any_folder(folder):
+    # the run description lives in a temporary folder far from the repository's priors/
+    path = folder / "run.toml"
+    path.write_text(toml_text(changed(BASE, {"prior": DELETE, "model": DELETE, "prior_file": "shallow_site"})))
+    config, problem = load_and_build(path)
+    assert config.prior_template is not None and config.prior_template.name == "shallow_site.toml"
+    assert config.prior_template.is_file() and config.layers.n_layers == 2  # n_layers = 3 in the template
+    assert "thickness_2" in problem.names
+
+
+def test_prior_template_typo_suggests_the_shipped_name(folder):
+    path = folder / "run.toml"
+    path.write_text(toml_text(changed(BASE, {"prior": DELETE, "model": DELETE, "prior_file": "shalow_site"})))
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    message = str(info.value)
+    assert str(path) in message and "'shalow_site'" in message and "did you mean 'shallow_site'" in message
 
 
 # ---------------------------------------------------------------------------- [data] waves

@@ -160,6 +160,30 @@ def test_message_reads_as_documented(tmp_path):
     assert str(info.value) == f"{tmp_path}/picks.csv, line 17, column 'sigma': sigma must be > 0 (got -0.002)"
 
 
+def test_missing_sigma_explains_what_sigma_is(tmp_path):
+    files = {"picks.csv": "source,receiver,wave,time,distance,source_depth,receiver_depth\nS1,R1,P,0.01,5,0,0\n"}
+    with pytest.raises(DataError) as info:
+        _read(str(tmp_path), files)
+    message = str(info.value)
+    assert "column 'sigma'" in message and "standard uncertainty" in message and "seconds" in message
+    assert '[noise] scale = "free"' in message
+
+
+@pytest.mark.parametrize("header, ours", [
+    ("source,receiver,wave,time,sigma,offset,source_depth,receiver_depth", "distance"),
+    ("source,receiver,phase,time,sigma,distance,source_depth,receiver_depth", "wave"),
+    ("source,receiver,wave,tt,sigma,distance,source_depth,receiver_depth", "time"),
+    ("source,receiver,wave,pick,sigma,distance,source_depth,receiver_depth", "time"),
+    ("source,receiver,wave,time,unc,distance,source_depth,receiver_depth", "sigma"),
+    ("source,receiver,wave,time,uncertainty,distance,source_depth,receiver_depth", "sigma"),
+])
+def test_column_names_of_other_programs_get_a_did_you_mean(tmp_path, header, ours):
+    files = {"picks.csv": f"{header}\nS1,R1,P,0.01,0.001,5,0,0\n"}
+    with pytest.raises(DataError) as info:
+        _read(str(tmp_path), files)
+    assert f"did you mean '{ours}'" in str(info.value)
+
+
 def test_one_geometry_table_alone_is_refused(tmp_path):
     paths = _write(str(tmp_path), {"picks.csv": TABLE_PICKS, "sources.csv": SOURCES})
     with pytest.raises(ValueError, match="both sources_path and receivers_path"):

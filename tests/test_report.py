@@ -321,6 +321,13 @@ def test_bad_arguments():
         report.write_report(".", bedrock_velocity=-1.0)
 
 
+def test_rhat_display_agrees_with_the_verdict():
+    # 1.0096 is below the 1.01 target: three decimals would print "1.010" beside "meets targets: yes"
+    assert report.rhat_text(1.0096, 1.01) == "1.0096"
+    assert report.rhat_text(1.009996, 1.01) == "1.009996"
+    assert float(report.rhat_text(1.0101, 1.01)) >= 1.01
+
+
 def test_two_way_times_in_ms_for_both_waves_of_a_metre_run(page):
     derived = _section(page, "derived")
     for wave in ("P", "S"):

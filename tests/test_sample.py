@@ -159,7 +159,10 @@ def test_blobs_are_kept_with_their_positions():
     assert np.allclose(single.blobs[..., 0], 2 * single.log_prob)
 
 
-def test_progress_bar_shows_time_left(capsys):
+def test_progress_bar_shows_time_left(capsys, monkeypatch):
+    import sys
+
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)  # the bar is drawn on a terminal only
     run_ensembles(std_normal_lp, start(), 20, seed=1, progress=True)
     err = capsys.readouterr().err
     assert "40/40" in err and "<" in err  # steps of both ensembles; tqdm's "elapsed<remaining"
