@@ -187,6 +187,34 @@ class Problem:
                 j = out[0]
                 raise ConfigError(picks.path, "data", f"line {int(picks.line_numbers[j])}, column '{name}': "
                                   f"{values[j]:g} km {what}")
+        # a liquid core whose top is fixed by the prior: no source or receiver can lie in or below it
+        core_top = self._fixed_liquid_core_top()
+        if core_top is not None:
+            for name in ("source_depth", "receiver_depth"):
+                values = np.asarray(getattr(picks, name), dtype=float)
+                out = np.flatnonzero(values >= core_top)
+                if out.size:
+                    j = out[0]
+                    raise ConfigError(picks.path, "data", f"line {int(picks.line_numbers[j])}, column '{name}': "
+                                      f"{values[j]:g} km lies in the core (the liquid core starts at {core_top:g} km, "
+                                      "fixed by the prior); no wave of a run starts or ends there")
+
+    def _fixed_liquid_core_top(self) -> float | None:
+        """Sphere runs: depth [km] of the top of the liquid (outer) core where the prior fixes it, else None.
+
+        The core is the deepest run of fluid layers under a solid layer (as in
+        :meth:`invert.sphere.RadialModel.core`); the spherical engine has no
+        wave starting or ending in it or in an inner core below it.
+        """
+        fluid = set(self.layers.fluid_layers)
+        if not fluid:
+            return None
+        k = max(fluid)
+        while k - 1 in fluid:
+            k -= 1
+        if k == 1:
+            return None  # liquid from the surface down: not a core
+        return self._fixed_interface_depths()[k - 2]
 
     def _add(self, name: str, spec, where: str) -> int:
         try:

@@ -366,6 +366,46 @@ def test_uniform_crust_over_uniform_mantle_by_geometry():
     assert 0.07 < late[2] < 0.15 and 0.18 < late[3] < 0.32
 
 
+@pytest.mark.parametrize("zs", [0.0, 250.0])
+def test_diffraction_limit_on_a_uniform_mantle_by_geometry(zs):
+    """A uniform mantle (straight rays) over a liquid core of radius rc: the last direct ray grazes
+    the core at Delta_g = acos(rc / rs) + acos(rc / rr); past it the diffracted wave takes the two
+    tangent legs and the arc along the boundary at the mantle velocity,
+    T = (sqrt(rs^2 - rc^2) + sqrt(rr^2 - rc^2)) / v + rc (Delta - Delta_g) / v
+    (circle geometry and the kinematics of a head wave, common practice). ``max_diffraction``
+    counts the arc Delta - Delta_g in degrees: the wave is there up to it and absent past it."""
+    R, rc, v, vs, vcore = 6000.0, 3000.0, 10.0, 5.6, 6.0
+    m = sphere.RadialModel.build([R, rc], [rc, 0.0], [v, vcore], [v, vcore], [vs, 0.0], [vs, 0.0])
+    rs, rr = R - zs, R
+    graze = math.degrees(math.acos(rc / rs) + math.acos(rc / rr))
+    legs = math.sqrt(rs ** 2 - rc ** 2) + math.sqrt(rr ** 2 - rc ** 2)
+    limit = 20.0
+    d = graze + np.array([-0.01, 0.01, 5.0, limit - 0.01, limit + 0.01, 40.0])
+    for wave, vel in (("P", v), ("S", vs)):
+        expect = (legs + rc * np.radians(d - graze)) / vel
+        diff = sphere.travel_times(m, wave, d, zs, branch="diffracted", max_diffraction=limit).time[0]
+        inside = (d > graze) & (d - graze <= limit)
+        np.testing.assert_allclose(diff[inside], expect[inside], rtol=1e-10)
+        assert np.all(np.isinf(diff[~inside]))
+        unlimited = sphere.travel_times(m, wave, d, zs, branch="diffracted").time[0]
+        np.testing.assert_allclose(unlimited[1:], expect[1:], rtol=1e-10)
+        # direct waves: the law-of-cosines chord up to the grazing ray, none past it
+        direct = sphere.travel_times(m, wave, d, zs, branch="direct").time[0]
+        chord = math.sqrt(rs ** 2 + rr ** 2 - 2 * rs * rr * math.cos(math.radians(d[0])))
+        assert direct[0] == pytest.approx(chord / vel, rel=1e-10) and np.all(np.isinf(direct[1:]))
+        # first arrivals: the diffracted wave within the limit (or P through the core if earlier);
+        # in the shadow past the limit only P through the core, S nothing
+        first = sphere.travel_times(m, wave, d, zs, max_diffraction=limit).time[0]
+        core = (sphere.travel_times(m, "P", d, zs, branch="PKP").time[0] if wave == "P"
+                else np.full(d.size, np.inf))
+        np.testing.assert_allclose(first[1:], np.minimum(np.where(inside, expect, np.inf), core)[1:], rtol=1e-10)
+        if wave == "S":
+            assert np.all(np.isinf(first[~inside][1:]))
+    # max_diffraction = 0: the shadow starts at the grazing ray
+    zero = sphere.travel_times(m, "S", d, zs, max_diffraction=0.0).time[0]
+    assert np.isfinite(zero[0]) and np.all(np.isinf(zero[1:]))
+
+
 # =================================================================== 3. quadrature reference
 def _check(ref, arr, j, delta_deg, zs, waves, shells, stop=None, zr=0.0):
     """The engine's (p, T) at pick j reproduce Delta and T by quadrature, turning in ``shells``."""

@@ -6,6 +6,11 @@
 * Wiring: the problem's predicted times are those of the spherical engine on
   ``RadialModel.from_layers``, and for a uniform planet the chord times ``2 R sin(Delta/2) / v``
   (geometry of a circle, common practice), which does not go through the engine's code.
+* The inverse problem by hand: log likelihood = sum of normal log densities (Gelman et al.) of the
+  engine's times on the planet typed in shell by shell (not through ``from_layers``), log
+  prior = normalised uniform densities; chords by the law of cosines for buried ends (plane
+  geometry, common practice); S stopped by a liquid core but not by the same core made solid
+  (no shear waves in a liquid; Aki & Richards); sources in the core.
 * Great-circle distances against the haversine formula (common practice) and simple cases.
 * A global synthetic survey (events and stations by longitude and latitude): picks at the
   true times plus the seeded noise, shadow-zone pairs named in the comments and not written.
@@ -13,7 +18,9 @@
   ``run_inversion``: the run folder is written, and the core radius and the mantle velocity
   of the true model lie inside the 99 % credible intervals (the 95 % ones are checked too;
   for a fixed seed each can miss by chance, about 5 % and 1 % of seeds for a calibrated
-  posterior). The slow test runs the case study of case_studies/invented_planet as written.
+  posterior). The case study of case_studies/invented_planet: its files cheaply in the
+  default suite (seeded picks reproduced, fit at the truth, the solid core's Vp/Vs unseen, no
+  core far off); the slow test runs it as written.
 """
 
 from __future__ import annotations
@@ -350,6 +357,143 @@ def test_uniform_planet_chords(tmp_path):
     np.testing.assert_allclose(pred[0], expected, rtol=1e-10)
 
 
+def test_uniform_planet_buried_source_chords(tmp_path):
+    """Buried sources and receivers read from the picks: straight chords by the law of cosines,
+    sqrt(rs^2 + rr^2 - 2 rs rr cos Delta) / v (plane geometry, common practice)."""
+    radius = 2000.0
+    rows = [(12.0, 0.0, 30.0), (70.0, 150.0, 0.0), (140.0, 600.0, 20.0), (179.5, 1200.0, 0.0)]  # deg, zs, zr km
+    lines = ["source,receiver,wave,time,sigma,distance,source_depth,receiver_depth"]
+    for i, (d, zs, zr) in enumerate(rows):
+        lines.append(f"s{i},r{i},P,1.0,0.1,{float(np.radians(d) * radius)!r},{zs},{zr}")
+    (tmp_path / "picks.csv").write_text("\n".join(lines) + "\n")
+    (tmp_path / "run.toml").write_text(textwrap.dedent(UNIFORM).lstrip().format())
+    problem = build_problem(load_config(tmp_path / "run.toml"))
+    vp = 9.1
+    pred, ok = problem.travel_times(np.array([[vp]]))
+    d, zs, zr = (np.array(c, dtype=float) for c in zip(*rows))
+    rs, rr = radius - zs, radius - zr
+    expected = np.sqrt(rs ** 2 + rr ** 2 - 2 * rs * rr * np.cos(np.radians(d))) / vp
+    assert ok.all()
+    np.testing.assert_allclose(pred[0], expected, rtol=1e-10)
+
+
+def _reduced_planet(depth_2: float, vp_2: float, vp_3: float, liquid: bool = True) -> sphere.RadialModel:
+    """The reduced test planet typed in shell by shell (not through RadialModel.from_layers).
+
+    Crust 0-30 km at 6.0 km/s; mantle from 30 km to depth_2, vp_2 at its top and
+    vp_2 + TRUE_GRADIENT_2 (depth_2 - 30) at its base ('flat' law); core from depth_2 to the
+    centre, vp_3 at its top and vp_3 + 0.0005 (R - depth_2) at the centre ('r2' law);
+    Vp/Vs 1.75 in the crust and 1.8 in the mantle (and in a solid core).
+    """
+    vp_bot = [6.0, vp_2 + TRUE_GRADIENT_2 * (depth_2 - 30.0), vp_3 + 0.0005 * (R_TEST - depth_2)]
+    vp_top = [6.0, vp_2, vp_3]
+    core_ratio = np.inf if liquid else 1.8
+    vs_top = [6.0 / 1.75, vp_2 / 1.8, vp_3 / core_ratio]
+    vs_bot = [6.0 / 1.75, vp_bot[1] / 1.8, vp_bot[2] / core_ratio]
+    return sphere.RadialModel.from_depths([0.0, 30.0, depth_2], [30.0, depth_2, R_TEST], vp_top, vp_bot,
+                                          vs_top, vs_bot, radius=R_TEST, law=("flat", "flat", "r2"))
+
+
+def test_log_likelihood_and_prior_by_hand(planet):
+    """The problem's log likelihood and log posterior equal a computation by hand: the planet
+    typed in shell by shell, the engine's first arrivals at the distances in degrees, the sum of
+    Gaussian log densities -z^2/2 - ln(sigma) - ln(2 pi)/2 and the normalised uniform priors
+    -ln(width) (the normal and uniform densities; Gelman et al., Bayesian Data Analysis, 3rd ed.,
+    2013, appendix A, from memory)."""
+    problem = build_problem(load_config(planet / "run.toml"))
+    picks = problem.picks
+    assert problem.names == ["depth_2", "vp_2", "vp_3"] and set(picks.branch) == {"first"}
+    assert np.all(picks.source_origin_time == 0.0)  # synthetic: the times are travel times
+    theta = np.array([[1500.0, 7.5, 7.0], [1200.0, 7.7, 6.0], [1650.0, 7.2, 7.9]])
+    ll = problem.log_likelihood(theta)
+    ll_pick = problem.log_likelihood(theta, pointwise=True)
+    deg = np.degrees(picks.distance / R_TEST)
+    for row, (depth_2, vp_2, vp_3) in enumerate(theta):
+        model = _reduced_planet(depth_2, vp_2, vp_3)
+        pred = np.empty(picks.n_picks)
+        for w in "PS":
+            sel = picks.wave == w
+            pred[sel] = sphere.travel_times(model, w, deg[sel], picks.source_depth[sel], picks.receiver_depth[sel],
+                                            max_diffraction=0.0).time[0]
+        z = (picks.time - pred) / picks.sigma
+        by_hand = -0.5 * z ** 2 - np.log(picks.sigma) - 0.5 * np.log(2 * np.pi)
+        np.testing.assert_allclose(ll_pick[row], by_hand, rtol=1e-10, atol=1e-10)
+        assert ll[row] == pytest.approx(by_hand.sum(), rel=1e-12)
+    # only the true model explains every pick: chi^2 per pick near 1 there, far above elsewhere
+    chi2 = -2 * (ll + np.sum(np.log(picks.sigma) + 0.5 * np.log(2 * np.pi))) / picks.n_picks
+    assert 0.5 < chi2[0] < 1.6 and np.all(chi2[1:] > 10)
+    widths = (1800.0 - 1000.0) * (8.2 - 7.0) * (8.0 - 5.5)
+    np.testing.assert_allclose(problem.log_prior(theta), -np.log(widths), rtol=1e-12)
+    np.testing.assert_allclose(problem.log_prob(theta), ll - np.log(widths), rtol=1e-12)
+
+
+def test_liquid_core_stops_s_and_sources_inside_it(planet, tmp_path):
+    """S cannot travel in a liquid (no rigidity; Aki & Richards, Quantitative Seismology, 2nd ed.,
+    2002, from memory): beyond the shadow the liquid core
+    lets P through and no S, while the same planet with a solid core has S there too. A source
+    lying in the core of a sampled model is an impossible model (log likelihood -inf), not an error."""
+    lines = ["source,receiver,wave,time,sigma,distance,source_depth,receiver_depth"]
+    arcs = [60.0, 170.0]
+    for i, d in enumerate(arcs):
+        for w in "PS":
+            lines.append(f"A,r{i},{w},100.0,0.5,{float(np.radians(d) * R_TEST)!r},40.0,0.0")
+    lines.append(f"B,r0,P,100.0,0.5,{float(np.radians(60.0) * R_TEST)!r},250.0,0.0")
+    (tmp_path / "picks.csv").write_text("\n".join(lines) + "\n")
+    liquid = RUN
+    solid = RUN.replace("fluid_layers = [3]\n", "").replace("vpvs_3 = { fixed = inf }", "vpvs_3 = { fixed = 1.8 }")
+    assert solid != liquid
+    (tmp_path / "liquid.toml").write_text(textwrap.dedent(liquid).lstrip())
+    (tmp_path / "solid.toml").write_text(textwrap.dedent(solid).lstrip())
+    theta = np.array([[1500.0, 7.5, 7.0]])
+    t_liq = build_problem(load_config(tmp_path / "liquid.toml")).travel_times(theta)[0][0]
+    t_sol = build_problem(load_config(tmp_path / "solid.toml")).travel_times(theta)[0][0]
+    # order of the picks: A-r0 P, A-r0 S, A-r1 P, A-r1 S, B-r0 P
+    assert np.all(np.isfinite(t_liq[[0, 1, 2, 4]])) and np.isinf(t_liq[3])
+    assert np.all(np.isfinite(t_sol))
+    np.testing.assert_array_equal(t_liq[[0, 1, 2, 4]], t_sol[[0, 1, 2, 4]])  # mantle paths and P: same
+    # the core boundary above the 250 km deep source B: its pick has no arrival, the row is -inf
+    problem = build_problem(load_config(tmp_path / "liquid.toml"))
+    pred, ok = problem.travel_times(np.array([[200.0, 7.5, 7.0]]))
+    assert ok.all() and np.isinf(pred[0, 4])
+    assert problem.log_likelihood(np.array([[200.0, 7.5, 7.0]]))[0] == -np.inf
+    # ... while a core boundary fixed by the prior above a source is an error naming the line
+    fixed = RUN.replace('depth_2 = { dist = "uniform", low = 1000.0, high = 1800.0 }', "depth_2 = { fixed = 200.0 }")
+    assert fixed != RUN
+    (tmp_path / "fixed.toml").write_text(textwrap.dedent(fixed).lstrip())
+    with pytest.raises(ConfigError, match="liquid core") as err:
+        build_problem(load_config(tmp_path / "fixed.toml"))
+    assert "line 6, column 'source_depth'" in str(err.value)
+    # an outer core over a solid inner core: an end below the outer core's top is refused too
+    cores = textwrap.dedent("""
+        title = "outer and inner core"
+        units = "km"
+        [data]
+        picks = "deep.csv"
+        [model]
+        geometry = "sphere"
+        planet_radius = 3000.0
+        layers = 2
+        depth_parameter = true
+        fluid_layers = [2]
+        [prior]
+        depth_1 = {{ fixed = {top} }}
+        depth_2 = {{ fixed = 2200.0 }}
+        vp_1 = {{ dist = "uniform", low = 8.0, high = 11.0 }}
+        vp_2 = {{ fixed = 7.0 }}
+        vp_3 = {{ fixed = 9.0 }}
+        vpvs_1 = {{ fixed = 1.8 }}
+        vpvs_2 = {{ fixed = inf }}
+        vpvs_3 = {{ fixed = 2.5 }}
+        """).lstrip()
+    (tmp_path / "deep.csv").write_text("source,receiver,wave,time,sigma,distance,source_depth,receiver_depth\n"
+                                       "q,r,P,100.0,0.5,3000.0,2500.0,0.0\n")
+    (tmp_path / "cores.toml").write_text(cores.format(top=1500.0))
+    with pytest.raises(ConfigError, match="liquid core starts at 1500 km"):
+        build_problem(load_config(tmp_path / "cores.toml"))
+    (tmp_path / "cores.toml").write_text(cores.format(top=2600.0).replace("2200.0", "2800.0"))
+    assert build_problem(load_config(tmp_path / "cores.toml")).sphere  # the source lies in the mantle
+
+
 # ============================================================================ inversion
 def test_reduced_inversion_recovers_core_and_mantle(planet):
     """run_inversion on a sphere run: folder written, core radius and mantle Vp inside the credible intervals."""
@@ -375,6 +519,31 @@ def test_reduced_inversion_recovers_core_and_mantle(planet):
     assert rows["depth_2"]["unit"] == "km" and rows["vp_2"]["unit"] == "km/s"
     # a short run: chains started near the optimum, none stuck elsewhere, roughly mixed
     assert not out.report.stuck and max(out.report.rhat) < 1.25
+
+
+def test_case_study_files(tmp_path):
+    """case_studies/invented_planet, cheaply: the picks are those of its seeded survey, the three
+    run descriptions build, the true model fits to chi^2 per pick near 1 (Gaussian noise of the
+    stated sd), the solid core's Vp/Vs leaves the likelihood unchanged (no first-arrival S pick
+    reaches the core: S stops at the shadow edge), and no model without a core comes near."""
+    folder = tmp_path / "planet"
+    folder.mkdir()
+    shutil.copy(CASE / "survey.toml", folder / "survey.toml")
+    assert cli.main(["synth", str(folder / "survey.toml")]) == 0
+    assert (folder / "picks.csv").read_bytes() == (CASE / "picks.csv").read_bytes()
+    liquid, solid, none = (build_problem(load_config(CASE / name))
+                           for name in ("run.toml", "run_solid_core.toml", "run_no_core.toml"))
+    truth = load_config(CASE / "run.toml").truth
+    theta = np.array([[truth[n] for n in liquid.names]])
+    n = liquid.picks.n_picks
+    const = np.sum(np.log(liquid.picks.sigma) + 0.5 * np.log(2 * np.pi))
+    chi2 = -2 * (liquid.log_likelihood(theta)[0] + const) / n
+    assert 0.7 < chi2 < 1.3
+    rows = np.array([[{**truth, "vpvs_3": r}[k] for k in solid.names] for r in (1.5, 1.8, 2.5, 4.0)])
+    ll_solid = solid.log_likelihood(rows)
+    assert np.all(ll_solid == ll_solid[0]) and ll_solid[0] == liquid.log_likelihood(theta)[0]
+    draws = none.sample_prior(400, np.random.default_rng(2))
+    assert np.all(none.log_likelihood(draws) < liquid.log_likelihood(theta)[0] - 1e4)
 
 
 @pytest.mark.slow
