@@ -12,7 +12,13 @@ and checks the key quantities of the README against the true model:
   enough for the S picks alone but not for the P picks;
 * regional_network -- Moho depth, Vp/Vs and the mantle velocity; the size of the flat-Earth
   approximation at 200 km, computed with an independent spherical ray calculation;
-* borehole -- interval velocities (Vp and Vs of every layer) and interface depths.
+* borehole -- interval velocities (Vp and Vs of every layer) and interface depths;
+* hidden_lvz -- a slower layer between faster ones: first arrivals alone put the refractor
+  at the depth given by the textbook intercept-time formula read as one layer (too deep), the
+  low-velocity-zone test on them is driven by the prior (its Bayes factor bounded by the prior
+  cap ln 3), and with reflections from the slow layer the slower layer is favoured (ln B > 5);
+* layer_count -- 1 to 4 layers compared by evidence on a 3-layer truth: 3 favoured over 2 by
+  ln B > 5, 4 not favoured over 3 by more than about 1 nat (Kass & Raftery 1995, from memory).
 
 The true derived values are computed here from the true layers with the textbook formulas
 (Vs30 = 30 m / sum of h_i / Vs_i over the top 30 m, NEHRP provisions; ASCE 7-16 ch. 20,
@@ -357,4 +363,224 @@ def test_full_setting_converges_and_holds_the_truth(tmp_path, name, config):
         truth = tomllib.load(fh)["truth"]
     d = draws(out)
     bad = check_inside(d, {k: v for k, v in truth.items() if k in d}, 0.99)
+    assert not bad, "\n".join(bad)
+
+
+# ============================================================================ hidden_lvz, layer_count: folders
+@pytest.mark.parametrize("name", ("hidden_lvz", "layer_count"))
+def test_new_folders_hold_what_their_readmes_promise(name):
+    folder = CASES / name
+    readme = (folder / "README.md").read_text()
+    for words in ("invert synth survey.toml", "invert run run.toml", "invert report runs/", "Synthetic",
+                  "invented", "licensed professionals", "ln B"):
+        assert words in readme, f"{name}/README.md does not mention {words!r}"
+    command = "invert lvz-test" if name == "hidden_lvz" else "invert compare compare.toml"
+    assert command in readme
+    assert name in (CASES / "README.md").read_text(), "row missing from case_studies/README.md"
+    # the [truth] of every run description with the generator's layering is the generator's model
+    m = survey_model(folder)
+    expected = {f"thickness_{k + 1}": h for k, h in enumerate(m["thickness"])}
+    expected.update({f"vp_{k + 1}": v for k, v in enumerate(m["vp"])})
+    for config in sorted(folder.glob("run*.toml")):
+        with open(config, "rb") as fh:
+            run = tomllib.load(fh)
+        if "truth" in run:
+            assert run["model"]["layers"] == len(m["thickness"]), config.name
+            assert run["truth"] == pytest.approx(expected), config.name
+
+
+# ============================================================================ hidden low-velocity layer
+# Textbook intercept-time formulas for flat layers over a refractor of velocity V (Kearey, Brooks
+# & Hill, An Introduction to Geophysical Exploration, 3rd ed., 2002, ch. 5, the multi-layer
+# intercept time; Telford, Geldart & Sheriff, Applied Geophysics, 2nd ed., 1990, sec. 4.3; both
+# from memory): the head wave from the refractor has intercept time
+#     t_i = 2 sum_k h_k sqrt(1 / v_k^2 - 1 / V^2)
+# over the layers above it. Reading the picks as one layer of velocity v_1 over the refractor
+# gives the depth z = t_i / (2 sqrt(1 / v_1^2 - 1 / V^2)); with a slower layer among those above,
+# that depth is too large (the hidden-layer / low-velocity-layer effect of the same chapters).
+def intercept_time(thickness, vp, refractor: float) -> float:
+    return 2.0 * sum(h * math.sqrt(1.0 / v**2 - 1.0 / refractor**2) for h, v in zip(thickness, vp))
+
+
+def apparent_depth(thickness, vp, refractor: float) -> float:
+    """Depth of the refractor from the two-segment reading (one layer of velocity vp[0])."""
+    return intercept_time(thickness, vp, refractor) / (2.0 * math.sqrt(1.0 / vp[0] ** 2 - 1.0 / refractor**2))
+
+
+def lvz_truth(folder: Path) -> dict:
+    m = survey_model(folder)
+    assert m["vp"][1] < m["vp"][0] < m["vp"][2], "the truth has a slower layer between faster ones"
+    depth = sum(m["thickness"])
+    z_app = apparent_depth(m["thickness"], m["vp"][:2], m["vp"][2])
+    return {"model": m, "depth": depth, "apparent": z_app}
+
+
+def synth_reflections(folder: Path) -> None:
+    assert cli.main(["synth", str(folder / "survey_reflections.toml")]) == 0
+    # the same first-arrival times in both files (same seed, first arrivals drawn first)
+    first = read_picks(folder / "picks.csv")
+    both = read_picks(folder / "picks_reflections.csv")
+    is_first = np.asarray(both.branch) == "first"
+    assert np.array_equal(both.travel_time[is_first], first.travel_time)
+    assert set(np.asarray(both.branch)[~is_first]) == {"reflection"}
+
+
+def check_first_arrivals_put_the_refractor_too_deep(d: dict, truth: dict) -> None:
+    """One layer over the refractor: the velocities are right, the depth is the textbook apparent one."""
+    m = truth["model"]
+    bad = check_inside(d, {"vp_1": m["vp"][0], "vp_2": m["vp"][2], "thickness_1": truth["apparent"]})
+    assert not bad, "\n".join(bad)
+    lo, hi = interval(d["thickness_1"], 0.99)
+    assert lo > truth["depth"] + 5.0, (lo, truth["depth"])  # far too deep, and sure of it
+
+
+def check_lvz_first_arrivals(out: dict, truth: dict) -> dict:
+    t = out["tests"][0]
+    assert t["coverage"]["first_arrivals_only"]
+    assert "the verdict is driven by the prior" in out["markdown"]
+    # exchangeable uniform velocity priors with layer 3 the fastest: P(vp_2 < vp_1) = 2/3 a priori
+    # (combinatorics), so no data can favour the monotone model by more than ln 3
+    assert t["prior_inversion_probability"] == pytest.approx(2.0 / 3.0, abs=1e-3)
+    assert t["log_cap_monotone"] == pytest.approx(math.log(3.0), abs=2e-3)
+    err = t["log_bayes_factor_error"]
+    assert -t["log_bayes_factor"] <= math.log(3.0) + 3 * err, t
+    # every fit of an inverted model has a monotone fit as good (a deeper refractor), so the data
+    # cannot favour the slower layer either: not beyond "a bare mention" (ln B 1, Kass & Raftery 1995)
+    assert t["log_bayes_factor"] < 1.0 + 3 * err, t
+    assert t["one_run_agrees_with_two_runs"]
+    # monotone fits: every layer at least as fast as layer 1 above the refractor, so
+    # sum h_k s_k <= depth * s_1 and the refractor is at least at the apparent depth
+    depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
+    assert depth["median_monotone"] > 0.97 * truth["apparent"] > truth["depth"] + 5.0, depth
+    return t
+
+
+def check_lvz_with_reflections(out: dict, truth: dict) -> dict:
+    t = out["tests"][0]
+    assert t["coverage"]["reflections_from_base_or_below"] > 0 and not t["coverage"]["first_arrivals_only"]
+    assert "verdict is driven by the prior" not in out["markdown"]
+    # "very strong" for the slower layer: ln B > 5 (2 ln B > 10, Kass & Raftery 1995, from memory)
+    assert t["log_bayes_factor"] > 5.0 and t["favours"] == "slower layer", t["log_bayes_factor"]
+    assert t["posterior_inversion_probability"] > 0.95
+    # with the slower layer allowed the refractor is found at its true depth; without it, deeper
+    depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
+    assert abs(depth["median_permissive"] - truth["depth"]) < 3 * depth["posterior_sd"] + 0.2, depth
+    assert depth["median_monotone"] > truth["depth"] + 3 * depth["posterior_sd"], depth
+    return t
+
+
+LVZ_REDUCED_FIRST = dict(estimators=("nested",), live_points=80, seed=3)
+LVZ_REDUCED_REFLECTIONS = dict(estimators=("nested",), live_points=40, seed=3)
+
+
+def test_hidden_lvz_first_arrivals_alone(tmp_path):
+    from invert import compare as cmp
+
+    folder = copy_case("hidden_lvz", tmp_path)
+    truth = lvz_truth(folder)
+    d = draws(invert_quietly(reduced(folder / "run.toml", walkers=16, ensembles=1, steps=600, burn=200)))
+    check_first_arrivals_put_the_refractor_too_deep(d, truth)
+    out = cmp.lvz_test(folder / "run_two_layers.toml", layer=2, settings=cmp.EvidenceSettings(**LVZ_REDUCED_FIRST),
+                       folder=folder / "runs" / "lvz_first", progress=False)
+    check_lvz_first_arrivals(out, truth)
+
+
+def test_hidden_lvz_reflections_see_the_slow_layer(tmp_path):
+    from invert import compare as cmp
+
+    folder = copy_case("hidden_lvz", tmp_path)
+    synth_reflections(folder)
+    truth = lvz_truth(folder)
+    out = cmp.lvz_test(folder / "run_reflections.toml", layer=2,
+                       settings=cmp.EvidenceSettings(**LVZ_REDUCED_REFLECTIONS),
+                       folder=folder / "runs" / "lvz_reflections", progress=False)
+    check_lvz_with_reflections(out, truth)
+
+
+# ============================================================================ how many layers
+def compare_case(folder: Path, **evidence) -> dict:
+    """Run `invert compare compare.toml` (with ``evidence`` replacing its [evidence] keys); rows by model name."""
+    import json
+
+    text = (folder / "compare.toml").read_text()
+    for key, value in evidence.items():
+        value = "[" + ", ".join(f'"{v}"' for v in value) + "]" if isinstance(value, tuple) else value
+        text, n = re.subn(rf"^{key}\s*=.*$", f"{key} = {value}", text, flags=re.M)
+        assert n == 1, key
+    path = folder / "compare_reduced.toml"
+    path.write_text(text)
+    assert cli.main(["compare", str(path), "--quiet", "--overwrite"]) == 0
+    doc = json.loads((folder / "runs" / "comparison" / "comparison.json").read_text())
+    return {r["model"]: r for r in doc["models"]} | {"_doc": doc}
+
+
+def check_layer_count(rows: dict) -> None:
+    """Occam's razor on a 3-layer truth with small noise (thresholds of Kass & Raftery 1995 on ln B, from memory)."""
+    one, two, three, four = (rows[f"{n} layer{'s' if n > 1 else ''}"] for n in (1, 2, 3, 4))
+    assert [r["layers_above_half_space"] for r in (one, two, three, four)] == [0, 1, 2, 3]
+    ln_b_32 = three["log_z"] - two["log_z"]
+    ln_b_43 = four["log_z"] - three["log_z"]
+    err_43 = math.hypot(four["log_z_error"], three["log_z_error"])
+    # the third layer is demanded: "very strong", ln B > 5
+    assert ln_b_32 > 5.0, ln_b_32
+    assert two["log_z"] > one["log_z"] + 5.0
+    # a fourth layer buys no fit worth its prior room: not favoured by more than about 1 nat
+    assert ln_b_43 < 1.0 + 3 * err_43, (ln_b_43, err_43)
+    assert one["posterior_probability"] < 1e-3 and two["posterior_probability"] < 0.01
+    assert three["posterior_probability"] + four["posterior_probability"] > 0.99
+    probs = [r["posterior_probability"] for r in (one, two, three, four)]
+    assert sum(probs) == pytest.approx(1.0)
+
+
+def test_layer_count_three_layers_favoured(tmp_path):
+    folder = copy_case("layer_count", tmp_path)
+    m = survey_model(folder)
+    assert len(m["thickness"]) == 2 and m["vp"] == sorted(m["vp"])  # a monotone 3-layer truth
+    rows = compare_case(folder, estimators=("nested",), live_points=60, seed=3)
+    check_layer_count(rows)
+    assert "Kass & Raftery" in (folder / "runs" / "comparison" / "comparison.md").read_text()
+    # the 3-layer posterior holds the truth
+    d = draws(invert_quietly(reduced(folder / "run.toml", walkers=16, ensembles=1, steps=700, burn=250)))
+    truth = {"thickness_1": m["thickness"][0], "thickness_2": m["thickness"][1]}
+    truth.update({f"vp_{k + 1}": v for k, v in enumerate(m["vp"])})
+    bad = check_inside(d, truth)
+    assert not bad, "\n".join(bad)
+
+
+# ============================================================================ full settings (slow), new studies
+@pytest.mark.slow
+def test_hidden_lvz_full(tmp_path):
+    from invert import compare as cmp
+
+    folder = copy_case("hidden_lvz", tmp_path)
+    synth_reflections(folder)
+    truth = lvz_truth(folder)
+    out = invert_quietly(folder / "run.toml")
+    assert out.converged, out.report.verdict
+    check_first_arrivals_put_the_refractor_too_deep(draws(out), truth)
+    out = invert_quietly(folder / "run_reflections.toml")
+    assert out.converged, out.report.verdict
+    d = draws(out)
+    with open(folder / "run_reflections.toml", "rb") as fh:
+        bad = check_inside(d, tomllib.load(fh)["truth"])
+    assert not bad, "\n".join(bad)
+    assert np.mean(d["vp_2"] < d["vp_1"]) > 0.99
+    full = cmp.EvidenceSettings(estimators=("nested",), live_points=400, seed=3)  # as in README.md
+    check_lvz_first_arrivals(cmp.lvz_test(folder / "run_two_layers.toml", layer=2, settings=full,
+                                          folder=folder / "runs" / "lvz_first", progress=False), truth)
+    check_lvz_with_reflections(cmp.lvz_test(folder / "run_reflections.toml", layer=2, settings=full,
+                                            folder=folder / "runs" / "lvz_reflections", progress=False), truth)
+
+
+@pytest.mark.slow
+def test_layer_count_full(tmp_path):
+    folder = copy_case("layer_count", tmp_path)
+    rows = compare_case(folder)  # compare.toml as written
+    check_layer_count(rows)
+    for name in ("1 layer", "2 layers", "3 layers", "4 layers"):
+        assert rows[name]["estimators_agree"], rows[name]
+    out = invert_quietly(folder / "run.toml")
+    assert out.converged, out.report.verdict
+    with open(folder / "run.toml", "rb") as fh:
+        bad = check_inside(draws(out), tomllib.load(fh)["truth"])
     assert not bad, "\n".join(bad)
