@@ -27,7 +27,7 @@ def _cmd_run(args) -> int:
 
 
 def _cmd_check(args) -> int:
-    from .config import load_config
+    from .config import load_config, model_words
     from .problem import build_problem
     from .run import data_checks, load_picks
 
@@ -42,7 +42,7 @@ def _cmd_check(args) -> int:
     for msg in data_checks(picks):
         print(msg)
     problem = build_problem(config, picks)
-    print(f"Model: {config.layers.n_layers} layer(s) over a half-space; {problem.ndim} free parameters")
+    print(f"Model: {model_words(config.layers, problem.ndim)}")
     print(problem.prior.describe())
     for name, dist in zip(problem.nuisance_names, problem.nuisance_priors):
         print(f"{name}: {dist.describe(problem.parameter_units()[name])}")

@@ -289,6 +289,12 @@ def velocity_density(models: list, weights: np.ndarray, *, n_depth: int = 120, n
         Draws in the mixture used for the quantiles.
     wave : {'P', 'S'}
 
+    Sphere runs (``problem.sphere``) are read as the planets their
+    likelihood uses (:meth:`~invert.problem.Problem.radial_models`): the
+    velocity at each depth follows the shell laws
+    (:meth:`invert.sphere.RadialModel.profile`), draws that make no planet are
+    left out, and the grid stops at the centre (the smallest planet radius).
+
     Returns
     -------
     dict
@@ -299,15 +305,23 @@ def velocity_density(models: list, weights: np.ndarray, *, n_depth: int = 120, n
     rng = rng if rng is not None else np.random.default_rng(0)
     weights = np.asarray(weights, dtype=float)
     deep, vmin, vmax = 0.0, np.inf, -np.inf
-    built = []
+    built, centre = [], np.inf
     for (problem, theta), w in zip(models, weights):
-        layer_model, ok = problem.models(theta)
-        built.append(layer_model)
+        if getattr(problem, "sphere", False):
+            radial, ok = problem.radial_models(theta)
+            layer_model = None if radial is None else problem.models(np.asarray(theta)[ok])[0]
+            centre = min(centre, float(problem.layers.planet_radius))
+        else:
+            radial = None
+            layer_model, ok = problem.models(theta)
+        built.append(layer_model if radial is None else radial)
         if layer_model is None:
             continue
         top, _ = layer_model.velocity(wave)
         base = layer_model.base_velocity(wave)
         finite = np.concatenate([top.ravel(), base[np.isfinite(base)].ravel()])
+        if radial is not None:  # shell laws run outside the end velocities (faster inside a 'flat' shell)
+            finite = np.concatenate([finite, radial.profile(np.linspace(0.0, centre, 101), wave).ravel()])
         if w > 1e-3:
             if layer_model.interface_depths.shape[1]:
                 deep = max(deep, float(np.percentile(layer_model.interface_depths[:, -1], 97.5)))
@@ -315,6 +329,10 @@ def velocity_density(models: list, weights: np.ndarray, *, n_depth: int = 120, n
     if not np.isfinite(vmin):
         raise ValueError("no model has usable posterior draws")
     zmax = float(max_depth) if max_depth is not None else (1.3 * deep if deep > 0 else 1.0)
+    if max_depth is None:
+        zmax = min(zmax, centre)
+    elif zmax > centre:
+        raise ValueError(f"max_depth: {zmax:g} km lies below the centre of the planet (radius {centre:g} km)")
     depth = np.linspace(0.0, zmax, n_depth)
     span = vmax - vmin
     edges = np.linspace(max(0.0, vmin - 0.05 * span), vmax + 0.05 * span, n_velocity + 1)
@@ -567,7 +585,8 @@ def _write_comparison(folder: Path, comp: Comparison, title: str, settings: Evid
 
     write_atomic(folder / "comparison.csv", _csv_text(comp.rows))
     write_atomic(folder / "layer_count.csv", _csv_text(comp.layer_count))
-    doc = {"title": title, "settings": dataclasses.asdict(settings), "models": comp.rows,
+    units = comp.density.get("units", "") if comp.density is not None else ""
+    doc = {"title": title, "units": units, "settings": dataclasses.asdict(settings), "models": comp.rows,
            "layer_count": comp.layer_count, "notes": comp.notes,
            "estimates": {m.name: {k: r.to_dict() for k, r in m.estimates.items()} for m in comp.models}}
     write_atomic(folder / "comparison.json", json.dumps(ev._plain(doc), indent=2))

@@ -217,6 +217,45 @@ def resolve_prior_file(path, base: Path, value: str) -> Path:
                                 f"template shipped with invert ({names}){hint}")
 
 
+def has_liquid_core(layers: LayerSettings) -> bool:
+    """True when the model of ``layers`` has a liquid core: a fluid half-space under a solid layer.
+
+    The core is the deepest run of fluid layers under a solid one
+    (:meth:`invert.sphere.RadialModel.core`); since a fluid layer over a solid
+    half-space is an outer core over an inner core, any fluid layer below a
+    solid one makes a core.
+    """
+    fluid = set(layers.fluid_layers)
+    total = layers.n_layers + 1
+    solid_above = False
+    for k in range(1, total + 1):
+        if k in fluid and solid_above:
+            return True
+        if k not in fluid:
+            solid_above = True
+    return False
+
+
+def model_words(layers: LayerSettings, n_free: int) -> str:
+    """One line on the model of a run: flat layers, or the spherical planet with its shell laws.
+
+    Parameters
+    ----------
+    layers : LayerSettings or SphereSettings
+    n_free : int
+        Number of free (sampled) parameters.
+    """
+    n = layers.n_layers
+    if layers.geometry != "sphere":
+        return f"{n} layer(s) over a half-space; {n_free} free parameters"
+    md = layers.max_diffraction
+    md_text = "inf (no limit)" if math.isinf(md) else f"{md:g} deg"
+    core = "a liquid core" if has_liquid_core(layers) else "solid to the centre"
+    return (f"spherical planet of radius {layers.planet_radius:g} km: {n} layer(s) as 'flat'-law shells (v / r "
+            f"linear in ln r) over a half-space shell to the centre ('r2' law, 1 / v^2 linear in r^2), {core}; "
+            f"max_diffraction = {md_text}; {n_free} free parameters")
+
+
 def _read_toml(path: Path) -> dict:
     if not path.exists():
         raise ConfigError(path, "", "file not found")
@@ -325,6 +364,15 @@ def load_config(path) -> RunConfig:
             raise ConfigError(path, "data", "geometry = 'sphere' reads the geometry inline from the picks file: "
                                             "distance = arc length along the surface [km], source_depth, "
                                             "receiver_depth; remove 'sources' and 'receivers'")
+        if "max_diffraction" not in model and has_liquid_core(LayerSettings(**shape)):
+            raise ConfigError(path, "model",
+                              "missing key 'max_diffraction': the model has a liquid core (a fluid layer under a "
+                              "solid one), so give the longest arc in degrees along the core boundary over which a "
+                              "diffracted wave (Pdiff, Sdiff) counts as a first arrival (0: none, so P and S stop "
+                              "at the edge of the core shadow; inf: at every distance). The diffracted time is "
+                              "exact as kinematics, but whether such a wave was picked as the first arrival "
+                              "depends on the data, not on the model (docs/sphere.md, 'Diffracted waves and "
+                              "first-arrival picks')")
         layers = SphereSettings(
             **shape,
             planet_radius=_get(path, "model", model, "planet_radius", float, required=True,

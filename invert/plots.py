@@ -76,6 +76,32 @@ def _row_histogram(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
     return counts.reshape(values.shape[1], n_bins) / values.shape[0]
 
 
+def _radial(model: LayerModel, planet_radius: float, what: str):
+    """The planets a sphere run makes of ``model`` (invert.sphere.RadialModel.from_layers)."""
+    from .sphere import RadialModel
+
+    try:
+        return RadialModel.from_layers(model, float(planet_radius))
+    except ValueError as exc:
+        raise ValueError(f"{what}: not a valid planet of radius {planet_radius:g}: {exc}") from None
+
+
+def _shell_profile(truth: LayerModel, wave: str, z_max: float, planet_radius: float,
+                   n: int = 400) -> tuple[np.ndarray, np.ndarray]:
+    """Velocity–depth polyline of one model read as shells (the engine's shell laws) down to ``z_max``.
+
+    Dense inside every shell, with both sides of every boundary, so that the
+    curved laws and the jumps are drawn as the engine evaluates them.
+    """
+    radius = float(planet_radius)
+    radial = _radial(truth, radius, "truth")
+    bounds = [d for d in truth.interface_depths[0] if 0.0 < d < z_max]
+    z = np.union1d(np.linspace(0.0, z_max, n), bounds)
+    eps = 1e-9 * radius
+    z = np.union1d(z, [d - eps for d in bounds])
+    return radial.profile(z, wave)[0], z
+
+
 def _truth_staircase(truth: LayerModel, wave: str, z_max: float) -> tuple[np.ndarray, np.ndarray]:
     """Exact velocity–depth polyline of one model down to ``z_max``."""
     top, grad = truth.velocity(wave)
@@ -90,7 +116,8 @@ def _truth_staircase(truth: LayerModel, wave: str, z_max: float) -> tuple[np.nda
 
 def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[str] | None = None,
                         truth: LayerModel | None = None, doi=None, length_unit: str = "m",
-                        n_velocity_bins: int = 80, max_models: int = 20000, path=None) -> Figure:
+                        n_velocity_bins: int = 80, max_models: int = 20000, planet_radius: float | None = None,
+                        path=None) -> Figure:
     """Posterior density of velocity against depth, with interface-depth histograms.
 
     Parameters
@@ -112,6 +139,14 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
         Velocity bins of the density image.
     max_models : int
         Larger batches are thinned to this many evenly spaced models (memory).
+    planet_radius : float, optional
+        Sphere runs: radius R of the planet [length]. The layers are then read
+        as the shells the spherical engine uses
+        (:meth:`invert.sphere.RadialModel.from_layers`: layers follow the
+        ``flat`` shell law, the half-space the ``r2`` law down to the centre),
+        velocities at every depth come from
+        :meth:`invert.sphere.RadialModel.profile`, and the depth axis stops at
+        the centre (depth R); a ``depth_grid`` beyond R is an error.
     path : str or Path, optional
         Write the figure there as PNG.
 
@@ -124,6 +159,15 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
         scaled to its own peak so that deep, wide ones stay visible.
     """
     z = _default_grid(model) if depth_grid is None else np.asarray(depth_grid, dtype=float)
+    if planet_radius is not None:
+        planet_radius = float(planet_radius)
+        if not (np.isfinite(planet_radius) and planet_radius > 0):
+            raise ValueError(f"planet_radius: expected a positive radius, got {planet_radius!r}")
+        if depth_grid is None and z[-1] > planet_radius:
+            z = np.linspace(0.0, planet_radius, z.size)
+        elif np.any(z > planet_radius * (1 + 1e-12)):
+            raise ValueError(f"depth_grid: depths reach {z.max():g} {length_unit}, below the centre of the planet "
+                             f"(planet_radius = {planet_radius:g} {length_unit})")
     if z.ndim != 1 or z.size < 2 or np.any(np.diff(z) <= 0):
         raise ValueError("depth_grid: expected at least two strictly increasing depths")
     if waves is None:
@@ -151,11 +195,18 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     doi_median = None if doi is None else float(np.median(doi))
     vel_unit = f"{length_unit}/s"
     image = None
+    radial = None if planet_radius is None else _radial(model, planet_radius, "model")
+
+    def truth_line(wave):
+        if planet_radius is None:
+            return _truth_staircase(truth, wave, z[-1])
+        return _shell_profile(truth, wave, z[-1], planet_radius)
+
     for ax, wave in zip(axes, waves):
-        prof = model.profile(z, wave)
+        prof = model.profile(z, wave) if radial is None else radial.profile(z, wave)
         lo, hi = np.quantile(prof, [0.001, 0.999])
         if truth is not None:
-            tv, _ = _truth_staircase(truth, wave, z[-1])
+            tv, _ = truth_line(wave)
             lo, hi = min(lo, tv.min()), max(hi, tv.max())
         pad = 0.05 * (hi - lo if hi > lo else max(abs(hi), 1.0))
         v_edges = np.linspace(lo - pad, hi + pad, n_velocity_bins + 1)
@@ -168,7 +219,7 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
             ax.plot(q[a], z, color=_ENVELOPE_COLOR, ls=style, lw=1.3, label=lab)
             ax.plot(q[b], z, color=_ENVELOPE_COLOR, ls=style, lw=1.3)
         if truth is not None:
-            tv, tz = _truth_staircase(truth, wave, z[-1])
+            tv, tz = truth_line(wave)
             ax.plot(tv, tz, color=_TRUTH_COLOR, lw=1.8, ls="-.", label="true model")
         ax.set_xlabel(f"{wave} velocity [{vel_unit}]")
         ax.set_xlim(v_edges[0], v_edges[-1])
@@ -197,7 +248,11 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
             ax.axhspan(max(doi_median, z[0]), z[-1], facecolor="none", edgecolor="tab:blue", hatch="//",
                        lw=0.0, alpha=0.5)
         ax.set_ylim(z[-1], z[0])
-    axes[0].set_ylabel(f"depth below datum [{length_unit}]")
+    if planet_radius is None:
+        axes[0].set_ylabel(f"depth below datum [{length_unit}]")
+    else:
+        axes[0].set_ylabel(f"depth below the surface [{length_unit}]\n(centre of the planet at "
+                           f"{planet_radius:g} {length_unit})")
     handles, labels = axes[0].get_legend_handles_labels()
     if doi_median is not None and doi_median < z[-1]:
         handles.append(Patch(facecolor="none", edgecolor="tab:blue", hatch="//",
@@ -206,7 +261,11 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
     fig.colorbar(image, ax=list(axes), location="right", fraction=0.03, pad=0.01,
                  label="fraction of models per velocity bin (at each depth)")
     shown = f"{model.n_models} models" if model.n_models == n_total else f"{model.n_models} of {n_total} models"
-    fig.suptitle(f"Velocity–depth posterior ({shown})")
+    if planet_radius is None:
+        fig.suptitle(f"Velocity–depth posterior ({shown})")
+    else:
+        fig.suptitle(f"Velocity–depth posterior ({shown}; shells of a planet of radius {planet_radius:g} "
+                     f"{length_unit})")
     return _finish(fig, path)
 
 
@@ -341,21 +400,60 @@ def _pick_arrays(distance, observed, sigma, band_times):
     return x, y, s, t
 
 
-def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_label):
+def band_quantiles(times, band: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Lower band edge, median and upper band edge of predicted times, masked where no arrival is predicted.
+
+    Parameters
+    ----------
+    times : (S, N) array
+        Predicted times [s] of S models at N places; ``inf`` or ``nan`` where a
+        model has no arrival (for instance in the shadow of a core).
+    band : float
+        Probability of the central band.
+
+    Returns
+    -------
+    lo, med, hi : (N,) arrays
+        Quantiles of the finite times [s]; ``nan`` wherever fewer than half
+        of the models predict an arrival, so that lines and bands drawn
+        through them break there instead of bridging the gap.
+    """
+    t = np.asarray(times, dtype=float)
+    finite = np.isfinite(t)
+    present = finite.mean(axis=0) >= 0.5
+    a = (1.0 - band) / 2.0
+    tt = np.where(finite, t, np.nan)[:, present]
+    out = np.full((3, t.shape[1]), np.nan)
+    if tt.size:
+        out[:, present] = np.nanquantile(tt, [a, 0.5, 1 - a], axis=0)
+    return out[0], out[1], out[2]
+
+
+def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_label, curves=None):
     sources = list(dict.fromkeys(src))
     colour = {name: f"C{i % 10}" for i, name in enumerate(sources)}
-    a = (1.0 - band) / 2.0
-    finite = np.isfinite(times)
-    lo = np.nanquantile(np.where(finite, times, np.nan), a, axis=0)
-    hi = np.nanquantile(np.where(finite, times, np.nan), 1 - a, axis=0)
-    med = np.nanquantile(np.where(finite, times, np.nan), 0.5, axis=0)
+    lo, med, hi = band_quantiles(times, band)
+    curves = {} if curves is None else curves
     for key in keys:
         sel = (src == key[0]) & (wav == key[1]) & (brn == key[2])
         order = np.argsort(x[sel], kind="stable")
         xs = x[sel][order]
         c = colour[key[0]]
-        ax.fill_between(xs, lo[sel][order], hi[sel][order], color=c, alpha=0.25, lw=0)
-        ax.plot(xs, med[sel][order], color=c, lw=1.0)
+        if key in curves:
+            # predictions on a dense distance grid: where most models have no arrival the line breaks
+            gx, gt = curves[key]
+            gx = np.asarray(gx, dtype=float)
+            gt = np.asarray(gt, dtype=float)
+            if gt.ndim != 2 or gt.shape[1] != gx.size:
+                raise ValueError(f"curves[{key!r}]: expected a grid (G,) and times (samples, G), got "
+                                 f"{gx.shape} and {gt.shape}")
+            g_order = np.argsort(gx, kind="stable")
+            g_lo, g_med, g_hi = band_quantiles(gt[:, g_order], band)
+            ax.fill_between(gx[g_order], g_lo, g_hi, color=c, alpha=0.25, lw=0)
+            ax.plot(gx[g_order], g_med, color=c, lw=1.0)
+        else:
+            ax.fill_between(xs, lo[sel][order], hi[sel][order], color=c, alpha=0.25, lw=0)
+            ax.plot(xs, med[sel][order], color=c, lw=1.0)
         ax.errorbar(xs, y[sel][order], yerr=s[sel][order], fmt=_WAVE_MARKERS.get(key[1], "^"), ms=4,
                     mfc="white", mec=c, ecolor=c, elinewidth=0.8, capsize=1.5, lw=0)
     handles = [Patch(facecolor="grey", alpha=0.35, label=band_label),
@@ -371,9 +469,25 @@ def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_lab
     return handles, med
 
 
+ARC_LABEL = "distance along the surface (arc)"
+
+
+def _arc_axes(ax, planet_radius: float | None) -> None:
+    """Sphere runs: a secondary axis on top giving the arc distance as an epicentral angle [deg]."""
+    if planet_radius is None:
+        return
+    r = float(planet_radius)
+    if not (np.isfinite(r) and r > 0):
+        raise ValueError(f"planet_radius: expected a positive radius, got {planet_radius!r}")
+    top = ax.secondary_xaxis("top", functions=(lambda x: np.degrees(np.asarray(x) / r),
+                                               lambda d: np.radians(np.asarray(d)) * r))
+    top.set_xlabel(f"epicentral angle [deg] (arc / planet radius {r:g})", fontsize=9)
+
+
 def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, wave=None, branch=None,
                          replicated=None, outlier_probability=None, band: float = 0.9,
-                         length_unit: str = "m", x_label: str | None = None, path=None) -> Figure:
+                         length_unit: str = "m", x_label: str | None = None, planet_radius: float | None = None,
+                         curves=None, path=None) -> Figure:
     """Picks against distance (or depth) with the posterior predictive band and residuals.
 
     Parameters
@@ -398,7 +512,18 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
         Probability of the central band (default 0.9).
     length_unit : str
     x_label : str, optional
-        Label of the abscissa with its unit (default: source–receiver distance).
+        Label of the abscissa with its unit (default: source–receiver distance;
+        with ``planet_radius``: distance along the surface, the arc).
+    planet_radius : float, optional
+        Sphere runs: radius of the planet [length]; ``distance`` is then the
+        arc along the surface and a top axis gives it in degrees.
+    curves : mapping (source, wave, branch) -> (grid (G,), times (S, G)), optional
+        Predictions of the same draws on a dense distance grid for a group of
+        picks [length, s] (replicated times when ``replicated`` is given);
+        the line and band of that group are drawn from them instead of
+        through its picks, and break where fewer than half of the draws
+        predict an arrival (a shadow). Without curves, lines join the picks
+        and break at picks where most draws predict no arrival.
     path : str or Path, optional
 
     Returns
@@ -418,8 +543,8 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
     ax, ax_r = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.4]})
     what = "posterior predictive" if replicated is not None else "posterior prediction"
     handles, _ = _draw_band_and_picks(ax, x, y, s, band_times, keys, src, wav, brn, band,
-                                      f"{what}, central {band:.0%}")
-    med_pred = np.nanmedian(np.where(np.isfinite(mu), mu, np.nan), axis=0)
+                                      f"{what}, central {band:.0%}", curves)
+    _, med_pred, _ = band_quantiles(mu, 0.5)
     res_ms = (y - med_pred) * 1e3
     sources = list(dict.fromkeys(src))
     for key in keys:
@@ -439,7 +564,9 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
                               label=f"outlier probability > 0.5 ({_count(int(out.sum()), 'pick')})"))
     ax.set_ylabel("travel time [s]")
     ax_r.set_ylabel("residual [ms]\n(observed − median predicted)", fontsize=9)
-    ax_r.set_xlabel(x_label or f"source–receiver distance [{length_unit}]")
+    default = ARC_LABEL if planet_radius is not None else "source–receiver distance"
+    ax_r.set_xlabel(x_label or f"{default} [{length_unit}]")
+    _arc_axes(ax, planet_radius)
     ax.legend(handles=handles, loc="upper left", fontsize=8, ncol=2 if len(handles) > 6 else 1)
     ax.set_title("Travel-time fit")
     fig.tight_layout()
@@ -448,7 +575,7 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
 
 def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=None, wave=None,
                           branch=None, band: float = 0.95, length_unit: str = "m", x_label: str | None = None,
-                          path=None) -> Figure:
+                          planet_radius: float | None = None, curves=None, path=None) -> Figure:
     """Picks over the travel times predicted by models drawn from the prior.
 
     A prior that covers the data leaves the picks inside the band; picks far
@@ -466,7 +593,14 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
         Probability of the central band (default 0.95).
     length_unit : str
     x_label : str, optional
-        Label of the abscissa with its unit (default: source–receiver distance).
+        Label of the abscissa with its unit (default: source–receiver distance;
+        with ``planet_radius``: distance along the surface, the arc).
+    planet_radius : float, optional
+        Sphere runs: radius of the planet [length] (top axis in degrees).
+    curves : mapping (source, wave, branch) -> (grid (G,), times (S, G)), optional
+        Prior predictions on a dense distance grid (see
+        :func:`plot_travel_time_fit`); lines and bands break where fewer than
+        half of the prior models predict an arrival.
     path : str or Path, optional
     """
     x, y, s, t = _pick_arrays(distance, observed, sigma, prior_predicted)
@@ -476,11 +610,14 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
     fig = _figure(8.5, 5.5)
     ax = fig.subplots()
     handles, _ = _draw_band_and_picks(ax, x, y, s, t, keys, src, wav, brn, band,
-                                      f"prior predictive, central {band:.0%}")
+                                      f"prior predictive, central {band:.0%}", curves)
     absent = np.mean(~np.isfinite(t))
     if absent > 0:
-        handles.append(Patch(color="none", label=f"{absent:.0%} of prior arrivals absent (not shown)"))
-    ax.set_xlabel(x_label or f"source–receiver distance [{length_unit}]")
+        handles.append(Patch(color="none", label=f"{absent:.0%} of prior arrivals absent (not shown; no line "
+                                                 "where most are)"))
+    default = ARC_LABEL if planet_radius is not None else "source–receiver distance"
+    ax.set_xlabel(x_label or f"{default} [{length_unit}]")
+    _arc_axes(ax, planet_radius)
     ax.set_ylabel("travel time [s]")
     ax.legend(handles=handles, loc="upper left", fontsize=8)
     ax.set_title(f"Prior predictive travel times ({t.shape[0]} prior models)")

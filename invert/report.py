@@ -70,6 +70,20 @@ CAUTIONS = (
     "investigation."
 )
 
+#: Closing caution of a run on a spherical planet (``[model] geometry = "sphere"``).
+SPHERE_CAUTIONS = (
+    "Every number in this report is an estimate with a stated uncertainty under the model, the priors and the "
+    "noise model described above; it is not a measurement, and a narrow interval only says that these data "
+    "and these assumptions leave little room. The model is spherically symmetric: concentric shells, the same "
+    "under every source and station, each following the shell law stated above between the velocities at its "
+    "ends; lateral variations and ellipticity are averaged, or show up as misfit. First arrivals cannot see a "
+    "shell slower than the one above it, except through the shadow it casts, nor a shell too thin to give a "
+    "first arrival of its own: such shells may be present without any sign in these data, and the depths "
+    "below them would then be wrong. Whether a diffracted wave along the core boundary was picked as a first "
+    "arrival is an assumption of the run (max_diffraction), not something the data decide. Structure below "
+    "the depth of investigation rests on the prior, not on the data."
+)
+
 #: Default velocity for the depth-to-velocity estimate: Vs 760 m/s, the B/C boundary of
 #: ASCE 7-16 Table 20.3-1 (from memory), often read as "bedrock-like" (common practice).
 BEDROCK_VS = 760.0
@@ -558,8 +572,11 @@ def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
                         for v in (x, zs, zr))
     from .plots import pick_abscissa
 
-    abscissa, label, kind = pick_abscissa(distance, zs, zr, source=picks.source_id, receiver=picks.receiver_id,
-                                          length_unit=an.length)
+    if problem.sphere:  # inline distances along the surface of the planet
+        abscissa, label, kind = distance.copy(), f"{ARC_WORDS} [{an.length}]", "arc"
+    else:
+        abscissa, label, kind = pick_abscissa(distance, zs, zr, source=picks.source_id,
+                                              receiver=picks.receiver_id, length_unit=an.length)
     outlier = problem.outlier_probability(theta)
     if outlier is not None:
         outlier = np.nanmean(outlier, axis=0)
@@ -597,7 +614,9 @@ def _section_run(an: _Analysis) -> list:
                      f"{np.median(sig) * 1e3:.3g}", f"{np.nanmin(picks.distance[sel]):g} – "
                      f"{np.nanmax(picks.distance[sel]):g}"])
     out.append(_Table(["wave", "branch", "interface", "picks", "median pick sd [ms]",
-                       f"distance range [{an.length}]"], rows, "Picks by wave and branch.", "llr"))
+                       ("arc " if problem.sphere else "") + f"distance range [{an.length}]"], rows,
+                      "Picks by wave and branch." + (" Distances are arcs along the surface of the planet."
+                                                     if problem.sphere else ""), "llr"))
     from .run import data_checks
 
     checks = data_checks(picks)
@@ -607,7 +626,8 @@ def _section_run(an: _Analysis) -> list:
     lay = problem.layers
     s_words = {"per_layer": "a Vp/Vs ratio per layer", "shared": "one Vp/Vs ratio shared by all layers",
                "vs": "an S velocity per layer", "none": "no S parameters (P picks only)"}[lay.vpvs_mode]
-    desc = [f"{_plural(lay.n_layers, 'layer')} over a half-space (layers numbered 1..{lay.n_layers + 1} from the top; "
+    desc = [sphere_model_words(lay) if problem.sphere else
+            f"{_plural(lay.n_layers, 'layer')} over a half-space (layers numbered 1..{lay.n_layers + 1} from the top; "
             f"interface k is the base of layer k); {problem.ndim} free parameters.",
             f"S velocities: {s_words}.",
             "Priors on " + ("interface depths." if lay.depth_parameter else "layer thicknesses.")]
@@ -615,6 +635,8 @@ def _section_run(an: _Analysis) -> list:
         desc.append("Linear velocity gradient in layer(s) " + ", ".join(map(str, lay.gradient_layers)) + ".")
     if lay.fluid_layers:
         desc.append("Fluid layer(s) (Vs = 0): " + ", ".join(map(str, lay.fluid_layers)) + ".")
+    if problem.sphere:
+        desc.append(f"{problem.ndim} free parameters.")
     out.append(_Items(desc))
     prior_rows, other = [], []
     for line in problem.prior.describe().splitlines():
@@ -663,6 +685,38 @@ def _section_run(an: _Analysis) -> list:
              "every draw."]
     out.append(_Items(items))
     return out
+
+
+#: Axis label of the arc distance of sphere runs (plots.ARC_LABEL).
+ARC_WORDS = "distance along the surface (arc)"
+
+
+def sphere_model_words(lay) -> str:
+    """One sentence on the planet of a sphere run: radius, shells and their laws, max_diffraction.
+
+    Parameters
+    ----------
+    lay : invert.parameters.SphereSettings
+    """
+    n = lay.n_layers
+    r = lay.planet_radius
+    shells = (f"{_plural(n, 'layer')} read as shells" if n else "no layers") + \
+        f" (numbered 1..{n + 1} from the surface; interface k is the base of shell k)"
+    fluid = set(lay.fluid_layers)
+    core = n + 1 in fluid and any(k not in fluid for k in range(1, n + 1))
+    md = lay.max_diffraction
+    md_words = ("no limit (inf): a wave diffracted along the core boundary counts as a first arrival at every "
+                "distance past the grazing ray" if math.isinf(md) else
+                "0: no diffracted wave counts as a first arrival; P and S stop at the edge of the core shadow"
+                if md == 0 else
+                f"{md:g} degrees of arc past the grazing ray, beyond which no diffracted wave counts as a first "
+                "arrival")
+    return (f"Spherical planet of radius {r:g} km: {shells}. Every layer is a shell with the same depths and "
+            "end velocities following the 'flat' law (v / r linear in ln r: the linear layer of the exactly "
+            "flattened planet); the half-space is a shell filling the planet to its centre, following the 'r2' "
+            "law (1 / v^2 linear in r^2) from its top velocity to the value of its linear law at the centre"
+            + (", liquid (a core)" if core else "") + ". Distances are arcs along the surface. "
+            f"max_diffraction = {md_words}.")
 
 
 def rhat_text(rhat: float, limit: float = 1.01, digits: int = 4) -> str:
@@ -758,14 +812,17 @@ def _section_estimates(an: _Analysis) -> list:
     return out
 
 
-def _depth_grid(model, doi, at_least: float = 0.0) -> np.ndarray:
+def _depth_grid(model, doi, at_least: float = 0.0, limit: float | None = None) -> np.ndarray:
     """Depths for the velocity–depth figure: to 1.3 times the deeper of the deepest interface (99th
-    percentile) and the median depth of investigation, and at least to ``at_least``."""
+    percentile) and the median depth of investigation, and at least to ``at_least``; never below
+    ``limit`` (sphere runs: the planet radius, the centre)."""
     deep = float(np.quantile(model.interface_depths[:, -1], 0.99)) if model.n_layers > 1 else 0.0
     d = np.asarray(doi, dtype=float)
     d = d[np.isfinite(d)]
     ray = float(np.median(d)) if d.size else 0.0
     z_max = max(1.3 * max(deep, ray), at_least)
+    if limit is not None:
+        z_max = min(z_max, float(limit))
     if not z_max > 0:
         z_max = 1.0
     return np.linspace(0.0, z_max, 241)
@@ -1029,8 +1086,8 @@ def _section_flags(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
     return out
 
 
-def _section_cautions() -> list:
-    return [_Heading(*SECTIONS[7]), _Para(CAUTIONS, "note")]
+def _section_cautions(sphere: bool = False) -> list:
+    return [_Heading(*SECTIONS[7]), _Para(SPHERE_CAUTIONS if sphere else CAUTIONS, "note")]
 
 
 # =================================================================== figures
@@ -1064,6 +1121,7 @@ def _abscissa_words(fit: _Fit) -> str:
             "source_depth": "source depth (sources down a hole; horizontal source–receiver distance "
                             f"{_range_words(fit.distance)})",
             "straight_line": "the straight-line source–receiver distance (sources and receivers at depth)",
+            "arc": "the distance along the surface of the planet (arc; epicentral angle on the top axis)",
             }.get(fit.abscissa_kind, "horizontal source–receiver distance")
 
 
@@ -1085,13 +1143,22 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
         title = dict(FIGURES)[key]
         figs.append(_Figure(key, title, caption, _png(fig)))
 
+    radius = problem.layers.planet_radius if problem.sphere else None
+
     # velocity–depth
     model, doi = fwd.get("model"), fwd.get("doi_ok")
     if model is not None:
         waves = ["P", "S"] if (an.s_model and an.n_s_picks) else ["P"]
         site = 33.0 if (an.length == "m" and an.s_model) else 0.0  # show the top 30 m that Vs30 averages
-        fig = plots.plot_velocity_depth(model, _depth_grid(model, doi, site), waves=waves, truth=an.truth_model,
-                                        doi=doi, length_unit=an.length)
+        radius = problem.layers.planet_radius if problem.sphere else None
+        if problem.sphere:  # only the draws that make a planet (all of them in a finished run)
+            from .parameters import build_radial_models
+
+            _, planet = build_radial_models(model, np.ones(model.n_models, bool), problem.layers)
+            model, doi = model.take(np.flatnonzero(planet)), doi[planet]
+        fig = plots.plot_velocity_depth(model, _depth_grid(model, doi, site, radius), waves=waves,
+                                        truth=an.truth_model, doi=doi, length_unit=an.length,
+                                        planet_radius=radius)
         cap = (f"{len(doi)} posterior draws. Grey shading: fraction of models in each velocity bin at each depth "
                "(darker = more models). Red: median velocity at each depth; orange: 68 % and 95 % envelopes. Right "
                "panel: where the interfaces lie. Blue hatching: below the median depth of investigation (deepest "
@@ -1100,6 +1167,10 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
             cap += " Green dash-dot: the true model of the synthetic data."
         if an.s_model and not an.n_s_picks:
             cap += " No S picks: only P velocity is shown."
+        if problem.sphere:
+            cap += (f" Depths below the surface of the planet, down to at most its centre ({radius:g} km); velocities "
+                    "follow the shell laws the travel times use (layers: 'flat' law; half-space: 'r2' law), not "
+                    "straight lines in depth.")
         add("velocity_depth", fig, cap)
     # travel-time fit
     if fit is not None:
@@ -1109,12 +1180,16 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
                                          fit.predicted - o_med, source=picks.source_id, wave=picks.wave,
                                          branch=picks.branch, replicated=fit.replicated - o_med,
                                          outlier_probability=fit.outlier, length_unit=an.length,
-                                         x_label=fit.abscissa_label)
+                                         x_label=fit.abscissa_label, planet_radius=radius,
+                                         curves=_sphere_curves(problem, an.theta_fwd, fit, replicate=True))
         cap = (f"Picks (± 1 sd) against {_abscissa_words(fit)}, with the central 90 % of picks replicated from "
                f"{fit.predicted.shape[0]} posterior draws (prediction plus pick noise). Colour: source; marker: "
                "wave. Lower panel: observed minus median predicted time in ms.")
         if fit.origin_fitted:
             cap += " Times are travel times after subtracting the fitted origin time of each source."
+        if problem.sphere:
+            cap += (" Lines and bands follow the predictions along the arc between a group's picks and break where "
+                    "most draws predict no arrival (a shadow).")
         add("travel_time_fit", fig, cap)
     # corner
     k = min(len(an.names), MAX_PANELS)
@@ -1148,10 +1223,14 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
         obs_tt = np.asarray(picks.time, dtype=float) - o_med
         fig = plots.plot_prior_predictive(fit.abscissa, obs_tt, np.asarray(picks.sigma, dtype=float), pp,
                                           source=picks.source_id, wave=picks.wave, branch=picks.branch,
-                                          length_unit=an.length, x_label=fit.abscissa_label)
+                                          length_unit=an.length, x_label=fit.abscissa_label,
+                                          planet_radius=radius,
+                                          curves=_sphere_curves(problem, fwd.get("prior_theta"), fit))
         cap = (f"Travel times of {pp.shape[0]} models drawn from the prior (central 95 %), with the picks, against "
                f"{_abscissa_words(fit)}. Picks far outside the band point to a prior that excludes the structure the "
                "data need. " + _prior_invalid_words(fwd))
+        if problem.sphere:
+            cap += (" No line or band is drawn where most prior models predict no arrival (a shadow).")
         add("prior_predictive", fig, cap.strip())
     # traces and convergence
     chains, burn, where = _chains_for_traces(an)
@@ -1201,6 +1280,61 @@ def _forward_quantities(an: _Analysis, bedrock_velocity: float) -> dict:
         out["prior_invalid"] = int((~valid).sum())
         if valid.any():
             out["prior_times"] = times[valid]
+            out["prior_theta"] = theta[valid]
+    return out
+
+
+#: Sphere runs: at most this many draws and grid distances per pick group for the predicted curves.
+CURVE_DRAWS = 100
+CURVE_POINTS = 120
+
+
+def _sphere_curves(problem: Problem, theta, fit: _Fit | None, replicate: bool = False) -> dict | None:
+    """Sphere runs: predicted times of every pick group on a dense grid of arc distances.
+
+    Each group of picks (source, wave, branch) with one receiver depth and one
+    interface gets the spherical engine's times [s] of up to ``CURVE_DRAWS``
+    of the draws ``theta`` at ``CURVE_POINTS`` distances spanning its picks
+    (the picks' own distances included), ``inf`` where a model has no arrival
+    (the plots break lines there). With ``replicate`` pick noise is added (the
+    median sd of the group's picks times the draw's noise scale). Returns None
+    for flat runs, fitted origin times (the figures subtract them) or no draws.
+    """
+    if not problem.sphere or theta is None or fit is None or fit.origin_fitted or len(theta) == 0:
+        return None
+    from . import sphere
+
+    theta = np.asarray(theta, dtype=float)
+    theta = theta[_evenly(len(theta), CURVE_DRAWS)]
+    radial, ok = problem.radial_models(theta)
+    if radial is None:
+        return None
+    theta = theta[ok]
+    x, zs, zr = problem.geometry(theta)
+    if np.ndim(x) != 1 or np.ndim(zs) != 1 or np.ndim(zr) != 1:
+        return None
+    picks = problem.picks
+    src = np.asarray(picks.source_id).astype(str)
+    wav = np.asarray(picks.wave).astype(str)
+    brn = np.asarray(picks.branch).astype(str)
+    scale = theta[:, problem.names.index("noise_scale")] if "noise_scale" in problem.names else np.ones(len(theta))
+    rng = np.random.default_rng(0)
+    out = {}
+    for key in dict.fromkeys(zip(src, wav, brn)):
+        sel = (src == key[0]) & (wav == key[1]) & (brn == key[2])
+        xs = np.asarray(x, dtype=float)[sel]
+        iface = np.unique(np.asarray(picks.interface)[sel])
+        if xs.min() == xs.max() or np.ptp(zs[sel]) > 0 or np.ptp(zr[sel]) > 0 or iface.size != 1:
+            continue
+        grid = np.union1d(np.linspace(xs.min(), xs.max(), CURVE_POINTS), xs)
+        arr = sphere.travel_times(radial, key[1], grid, float(zs[sel][0]), float(zr[sel][0]), branch=key[2],
+                                  interface=int(iface[0]) if key[2] == "head" else None, distance_unit="km",
+                                  max_diffraction=problem.layers.max_diffraction)
+        times = arr.time
+        if replicate:
+            sd = float(np.median(np.asarray(picks.sigma, dtype=float)[sel])) * scale
+            times = times + rng.standard_normal(times.shape) * sd[:, None]
+        out[key] = (grid, times)
     return out
 
 
@@ -1385,7 +1519,7 @@ def write_report(run_dir, png: bool = False, *, bedrock_velocity: float = BEDROC
     blocks += [_Heading(*SECTIONS[6])]
     blocks += [_Para("Each figure is described in its caption; docs/report.md explains how to read them.", "plain")]
     blocks += figures
-    blocks += _section_cautions()
+    blocks += _section_cautions(run.problem.sphere)
     converged = run.convergence.get("converged") is True
     verdict = (_Para("Sampling converged (all convergence targets met). Read the cautions at the end before using "
                      "the numbers.", "good") if converged else

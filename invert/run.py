@@ -580,8 +580,9 @@ def run_inversion(config_path, *, resume: bool = False, overwrite: bool = False,
     for message in data_checks(picks):
         _say(message, quiet)
     problem = build_problem(config, picks)
-    _say(f"Model: {config.layers.n_layers} layer(s) over a half-space; {problem.ndim} free parameters: "
-         f"{', '.join(problem.names)}", quiet)
+    from .config import model_words
+
+    _say(f"Model: {model_words(config.layers, problem.ndim)}: {', '.join(problem.names)}", quiet)
     for message in plausibility_warnings(problem):
         print(message, file=sys.stderr, flush=True)
     support = prior_support_error(problem)

@@ -400,3 +400,27 @@ def test_waves_keeps_only_the_listed_waves(folder):
     path.write_text(toml_text(BASE))
     config, problem = load_and_build(path)
     assert config.waves is None and problem.picks.n_picks == 5
+
+
+def test_model_words_state_the_geometry():
+    """`invert check` / `invert run` say what the model is: flat layers as before, or the planet
+    with its radius, shell laws, core and max_diffraction."""
+    import math
+
+    from invert.config import has_liquid_core, model_words
+    from invert.parameters import LayerSettings, SphereSettings
+
+    flat = LayerSettings(n_layers=2)
+    assert model_words(flat, 5) == "2 layer(s) over a half-space; 5 free parameters"
+    core = SphereSettings(n_layers=2, fluid_layers=(3,), planet_radius=5200.0, max_diffraction=0.0)
+    text = model_words(core, 6)
+    for fragment in ("spherical planet of radius 5200 km", "'flat'-law shells", "'r2' law", "a liquid core",
+                     "max_diffraction = 0 deg", "6 free parameters"):
+        assert fragment in text
+    solid = SphereSettings(n_layers=1, planet_radius=3000.0, max_diffraction=math.inf)
+    assert "solid to the centre" in model_words(solid, 3) and "inf (no limit)" in model_words(solid, 3)
+    # a core is a fluid layer under a solid one; an ocean from the surface down is not
+    assert has_liquid_core(core) and not has_liquid_core(solid)
+    assert has_liquid_core(LayerSettings(n_layers=2, fluid_layers=(2,)))          # outer over inner core
+    assert not has_liquid_core(LayerSettings(n_layers=2, fluid_layers=(1,)))      # an ocean
+    assert has_liquid_core(LayerSettings(n_layers=2, fluid_layers=(1, 3)))        # ocean and core

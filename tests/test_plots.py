@@ -239,3 +239,119 @@ def test_travel_time_figures_take_the_abscissa_label(picks):
     fig = plots.plot_prior_predictive(x, observed, sigma, predicted, source=source, wave=wave,
                                       x_label="receiver depth [m]")
     assert fig.axes[0].get_xlabel() == "receiver depth [m]"
+
+
+# ------------------------------------------------------------ sphere runs
+# The invented planet of case_studies/invented_planet (synthetic): radius 5200 km; crust 35 km,
+# 6.2 km/s; mantle 35-2500 km, Vp 8.0 -> 12.5 km/s; liquid core below, 8.5 km/s at its top,
+# gradient 0.0005 1/s (9.85 km/s at the centre).
+R_PLANET = 5200.0
+
+
+def _planet_layers(n: int = 1) -> LayerModel:
+    return LayerModel.build(np.tile([35.0, 2465.0], (n, 1)), np.tile([6.2, 8.0, 8.5], (n, 1)),
+                            vs=np.tile([6.2 / 1.75, 8.0 / 1.8, 0.0], (n, 1)),
+                            gradient=np.tile([0.0, 4.5 / 2465.0, 0.0005], (n, 1)))
+
+
+def _shell_law_by_hand(depth):
+    """P velocity of the planet read as shells, written out from the two laws (not through invert.sphere).
+
+    Layers: the linear layer of the Earth-flattening transformation z_f = R ln(R / r),
+    v_f = (R / r) v (Müller, J. Geophys. 42, 1977; from memory), i.e. v / r linear in ln r
+    between the end values. Half-space to the centre: 1 / v^2 = A + B r^2 through its top
+    velocity and the centre value of its linear law (9.85 km/s).
+    """
+    r = R_PLANET - np.asarray(depth, dtype=float)
+    out = np.empty_like(r)
+    for (z0, z1, v0, v1) in ((0.0, 35.0, 6.2, 6.2), (35.0, 2500.0, 8.0, 12.5)):
+        r0, r1 = R_PLANET - z0, R_PLANET - z1
+        inside = (r <= r0) & (r > r1)
+        frac = np.log(r0 / r[inside]) / np.log(r0 / r1)
+        out[inside] = r[inside] * (v0 / r0 + (v1 / r1 - v0 / r0) * frac)
+    core = r <= R_PLANET - 2500.0
+    rc, vt, vc = R_PLANET - 2500.0, 8.5, 8.5 + 0.0005 * 2700.0
+    a = 1.0 / vc ** 2
+    b = (1.0 / vt ** 2 - a) / rc ** 2
+    out[core] = 1.0 / np.sqrt(a + b * r[core] ** 2)
+    return out
+
+
+def test_velocity_depth_sphere_follows_the_shell_laws(tmp_path):
+    """Sphere runs: the plotted profile is the engine's (RadialModel.profile) and the shell laws
+    written out by hand, not straight lines in depth; the depth axis stops at the centre."""
+    from invert.sphere import RadialModel
+
+    model = _planet_layers(3)
+    grid = np.linspace(0.0, R_PLANET, 521)  # 10 km steps: 1270 km is a grid depth
+    fig = plots.plot_velocity_depth(model, grid, waves=["P"], truth=_planet_layers(1), length_unit="km",
+                                    planet_radius=R_PLANET, path=tmp_path / "vd.png")
+    _written(tmp_path / "vd.png")
+    ax = fig.axes[0]
+    median = ax.lines[0]
+    z, v = np.asarray(median.get_ydata()), np.asarray(median.get_xdata())
+    engine = RadialModel.from_layers(_planet_layers(1), R_PLANET).profile(z, "P")[0]
+    np.testing.assert_allclose(v, engine, rtol=1e-12)
+    at = [np.flatnonzero(np.isclose(z, d))[0] for d in (20.0, 600.0, 1270.0, 2400.0, 3000.0, 5200.0)]
+    np.testing.assert_allclose(v[at], _shell_law_by_hand(z[at]), rtol=1e-10)
+    # mantle at 1270 km: 11.19 km/s on the shell law; the straight line in depth gives 10.25
+    i = at[2]
+    assert abs(v[i] - 11.1877) < 1e-3 and abs(v[i] - (8.0 + 4.5 / 2465.0 * 1235.0)) > 0.9
+    truth = next(line for line in ax.lines if line.get_label() == "true model")
+    tz, tv = np.asarray(truth.get_ydata()), np.asarray(truth.get_xdata())
+    inside = (tz > 36.0) & (tz < 2499.0) | (tz > 2501.0)
+    np.testing.assert_allclose(tv[inside], _shell_law_by_hand(tz[inside]), rtol=1e-10)
+    assert ax.get_ylim() == (R_PLANET, 0.0) and tz.max() <= R_PLANET
+    assert "centre" in ax.get_ylabel()
+    # default grid: stops at the centre, however deep 1.3 x the deepest interface would reach
+    deep = LayerModel.build([[35.0, 4500.0]], [[6.2, 8.0, 8.5]], vs=[[3.5, 4.4, 0.0]])
+    fig = plots.plot_velocity_depth(deep, waves=["P"], length_unit="km", planet_radius=R_PLANET)
+    assert fig.axes[0].get_ylim() == (R_PLANET, 0.0)
+    with pytest.raises(ValueError, match="below the centre"):
+        plots.plot_velocity_depth(model, np.linspace(0.0, 6300.0, 50), planet_radius=R_PLANET, length_unit="km")
+
+
+def test_band_quantiles_mask_absent_arrivals():
+    """Where most models predict no arrival the median and band are NaN (lines break); elsewhere
+    they are numpy's quantiles of the finite times."""
+    t = np.array([[1.0, 2.0, np.inf, 4.0],
+                  [1.5, np.inf, np.inf, 5.0],
+                  [2.0, 3.0, 7.0, np.inf],
+                  [2.5, 4.0, np.inf, 6.0]])
+    lo, med, hi = plots.band_quantiles(t, 0.5)
+    for j in (0, 1, 3):
+        finite = t[np.isfinite(t[:, j]), j]
+        np.testing.assert_allclose([lo[j], med[j], hi[j]], np.quantile(finite, [0.25, 0.5, 0.75]))
+    assert np.isnan([lo[2], med[2], hi[2]]).all()  # 1 of 4 models has an arrival
+
+
+def test_travel_time_figures_on_a_sphere(picks):
+    """Arc distance on the x axis with the angle in degrees on top; no line across a shadow."""
+    x, observed, sigma, predicted, source, wave = picks
+    x_km = x * 100.0  # read as km of arc on a planet of radius 5200 km
+    grid = np.linspace(x_km.min(), x_km.max(), 50)
+    shadow = (grid > 2500.0) & (grid < 4000.0)
+    times = np.tile(grid / 8.0, (20, 1))
+    times[:, shadow] = np.inf
+    times[:3, ~shadow] = np.inf  # a few models without an arrival anywhere: still a line
+    curves = {("S1", "P", ""): (grid, times)}
+    for fn, kwargs in ((plots.plot_travel_time_fit, {}), (plots.plot_prior_predictive, {})):
+        fig = fn(x_km, observed, sigma, predicted, source=source, wave=wave, length_unit="km",
+                 planet_radius=R_PLANET, curves=curves, **kwargs)
+        ax = fig.axes[0]
+        bottom = fig.axes[1] if fn is plots.plot_travel_time_fit else ax
+        assert bottom.get_xlabel() == "distance along the surface (arc) [km]"
+        top = ax.child_axes[0]
+        assert "deg" in top.get_xlabel()
+        lo, hi = ax.get_xlim()
+        np.testing.assert_allclose(top.get_xlim(), np.degrees(np.array([lo, hi]) / R_PLANET))
+        line = next(ln for ln in ax.lines if len(ln.get_xdata()) == grid.size)
+        y = np.asarray(line.get_ydata(), dtype=float)
+        assert np.isnan(y[shadow]).all() and np.allclose(y[~shadow], grid[~shadow] / 8.0)
+    # without curves, a pick where most models have no arrival gets no line point either
+    pred = predicted.copy()
+    pred[:60, 4] = np.inf
+    fig = plots.plot_prior_predictive(x_km, observed, sigma, pred, source=source, wave=wave, length_unit="km")
+    sel = (source == "S1") & (wave == "P")
+    shown = [ln for ln in fig.axes[0].lines if len(ln.get_xdata()) == sel.sum()]
+    assert any(np.isnan(np.asarray(ln.get_ydata(), dtype=float)).any() for ln in shown)

@@ -645,3 +645,25 @@ def test_comparison_report_renders_in_a_real_headless_browser(comparison_dir, tm
     assert res.returncode == 0 and shot.exists(), res.stderr[-2000:]
     pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
     assert pixels.std() > 10.0 and len(np.unique(pixels)) > 50
+
+
+def test_sphere_run_words_and_depth_grid():
+    """Sphere runs: the model line names the planet, its shell laws and max_diffraction; the
+    closing caution keeps the general part without flat layers or site decisions; the
+    velocity-depth grid stops at the centre however deep the rays go."""
+    from invert.parameters import SphereSettings
+
+    lay = SphereSettings(n_layers=2, fluid_layers=(3,), planet_radius=5200.0, max_diffraction=12.0)
+    words = report.sphere_model_words(lay)
+    for fragment in ("Spherical planet of radius 5200 km", "'flat' law", "'r2' law", "liquid (a core)",
+                     "max_diffraction = 12 degrees"):
+        assert fragment in words
+    sphere_caution = report._section_cautions(True)[1].text
+    assert sphere_caution.startswith(report.CAUTIONS.split(" The model is")[0])
+    for flat_only in ("flat, laterally uniform layers", "Engineering decisions", "site investigation"):
+        assert flat_only in report.CAUTIONS and flat_only not in sphere_caution
+    assert report._section_cautions()[1].text == report.CAUTIONS
+    model = LayerModel.build([[35.0, 2465.0]], [[6.2, 8.0, 8.5]], vs=[[3.5, 4.4, 0.0]])
+    doi = np.array([4900.0])  # rays through the core: 1.3 x 4900 km would be 6370 km
+    assert report._depth_grid(model, doi)[-1] == pytest.approx(1.3 * 4900.0)
+    assert report._depth_grid(model, doi, limit=5200.0)[-1] == 5200.0

@@ -189,8 +189,24 @@ def test_sphere_settings_read(planet):
     flat_twin = dataclasses.replace(cfg, layers=LayerSettings(**{f.name: getattr(cfg.layers, f.name) for f in
                                                                  dataclasses.fields(LayerSettings)}))
     assert fingerprint(flat_twin) != fingerprint(cfg)
-    default = load_config(write(planet, "default_md.toml", RUN.replace("max_diffraction = 0.0\n", "")))
+    # without a liquid core the key may be left out (default inf) ...
+    solid = RUN.replace("max_diffraction = 0.0\n", "").replace("fluid_layers = [3]\n", "").replace(
+        "vpvs_3 = { fixed = inf }", "vpvs_3 = { fixed = 1.8 }")
+    default = load_config(write(planet, "default_md.toml", solid))
     assert default.layers.max_diffraction == np.inf
+
+
+@pytest.mark.parametrize("fluid", ["[3]", "[2]"])
+def test_liquid_core_needs_max_diffraction(planet, fluid):
+    """... with a liquid core (fluid half-space, or a fluid layer over a solid inner core) it must be stated."""
+    text = RUN.replace("max_diffraction = 0.0\n", "").replace("fluid_layers = [3]", f"fluid_layers = {fluid}")
+    with pytest.raises(ConfigError) as err:
+        load_config(write(planet, "no_md.toml", text))
+    assert err.value.key == "model" and "max_diffraction" in str(err.value) and "no_md.toml" in str(err.value)
+    assert "liquid core" in str(err.value) and "picked" in str(err.value)
+    # an ocean (fluid from the surface down) is not a core: no key needed
+    ocean = RUN.replace("max_diffraction = 0.0\n", "").replace("fluid_layers = [3]", "fluid_layers = [1]")
+    assert load_config(write(planet, "ocean.toml", ocean)).layers.max_diffraction == np.inf
 
 
 @pytest.mark.parametrize("edit, key, message", [
@@ -472,6 +488,7 @@ def test_liquid_core_stops_s_and_sources_inside_it(planet, tmp_path):
         [model]
         geometry = "sphere"
         planet_radius = 3000.0
+        max_diffraction = 0.0
         layers = 2
         depth_parameter = true
         fluid_layers = [2]
@@ -519,6 +536,44 @@ def test_reduced_inversion_recovers_core_and_mantle(planet):
     assert rows["depth_2"]["unit"] == "km" and rows["vp_2"]["unit"] == "km/s"
     # a short run: chains started near the optimum, none stuck elsewhere, roughly mixed
     assert not out.report.stuck and max(out.report.rhat) < 1.25
+    _check_sphere_report(folder)
+
+
+def _check_sphere_report(folder: Path) -> None:
+    """The report of a sphere run speaks of the planet, not of flat layers and a site survey."""
+    from invert.report import write_report
+
+    write_report(folder, png=True, max_draws=40)
+    text = (folder / "report.md").read_text()
+    assert f"Spherical planet of radius {R_TEST:g} km" in text and "'flat' law" in text and "'r2'" in text
+    assert "max_diffraction = 0: no diffracted wave" in text
+    assert "over a half-space (layers numbered" not in text
+    cautions = text[text.index("spherically symmetric") - 400:]
+    assert "flat, laterally uniform layers" not in cautions and "site investigation" not in cautions
+    assert "Every number in this report is an estimate" in cautions  # the general caution stays
+    assert "distance along the surface of the planet (arc" in text
+    for name in ("velocity_depth", "travel_time_fit", "prior_predictive"):
+        assert (folder / "figures" / f"{name}.png").stat().st_size > 1000
+
+
+def test_velocity_density_of_a_sphere_run(planet):
+    """compare.velocity_density on a sphere run: the profile is the engine's shell law, the grid
+    stops at the centre."""
+    from invert.compare import velocity_density
+
+    problem = build_problem(load_config(planet / "run.toml"))
+    theta = np.array([[TRUE[n] for n in problem.names]] * 5)
+    out = velocity_density([(problem, theta)], np.array([1.0]), n_depth=61, max_depth=None, draws=50)
+    depth = out["depth"]
+    assert depth[-1] <= R_TEST
+    radial, _ = problem.radial_models(theta[:1])
+    np.testing.assert_allclose(out["quantiles"][50.0], radial.profile(depth, "P")[0], rtol=1e-12)
+    # mid-mantle the 'flat' shell law, not the straight line between the end velocities
+    j = np.argmin(np.abs(depth - 750.0))
+    straight = TRUE["vp_2"] + TRUE_GRADIENT_2 * (depth[j] - 30.0)
+    assert out["quantiles"][50.0][j] - straight > 0.3
+    with pytest.raises(ValueError, match="below the centre"):
+        velocity_density([(problem, theta)], np.array([1.0]), max_depth=2 * R_TEST)
 
 
 def test_case_study_files(tmp_path):
