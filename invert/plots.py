@@ -484,6 +484,10 @@ def _arc_axes(ax, planet_radius: float | None) -> None:
     top.set_xlabel(f"epicentral angle [deg] (arc / planet radius {r:g})", fontsize=9)
 
 
+#: Median pick error [s] from which fit residuals are drawn in seconds rather than milliseconds.
+RESIDUAL_SECONDS_FROM = 0.05
+
+
 def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, wave=None, branch=None,
                          replicated=None, outlier_probability=None, band: float = 0.9,
                          length_unit: str = "m", x_label: str | None = None, planet_radius: float | None = None,
@@ -530,7 +534,8 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
     -------
     matplotlib.figure.Figure
         Top: times [s]; bottom: residuals observed − posterior-median
-        prediction [ms] with pick error bars.
+        prediction with pick error bars, in ms, or in s when the median pick
+        error is at least ``RESIDUAL_SECONDS_FROM``.
     """
     x, y, s, mu = _pick_arrays(distance, observed, sigma, predicted)
     band_times = mu if replicated is None else np.asarray(replicated, dtype=float)
@@ -545,12 +550,14 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
     handles, _ = _draw_band_and_picks(ax, x, y, s, band_times, keys, src, wav, brn, band,
                                       f"{what}, central {band:.0%}", curves)
     _, med_pred, _ = band_quantiles(mu, 0.5)
-    res_ms = (y - med_pred) * 1e3
+    # Residuals in ms for refraction-size errors, in s for earthquake-size ones.
+    res_scale, res_unit = (1.0, "s") if np.nanmedian(s) >= RESIDUAL_SECONDS_FROM else (1e3, "ms")
+    res_ms = (y - med_pred) * res_scale
     sources = list(dict.fromkeys(src))
     for key in keys:
         sel = (src == key[0]) & (wav == key[1]) & (brn == key[2])
         c = f"C{sources.index(key[0]) % 10}"
-        ax_r.errorbar(x[sel], res_ms[sel], yerr=s[sel] * 1e3, fmt=_WAVE_MARKERS.get(key[1], "^"), ms=4,
+        ax_r.errorbar(x[sel], res_ms[sel], yerr=s[sel] * res_scale, fmt=_WAVE_MARKERS.get(key[1], "^"), ms=4,
                       mfc="white", mec=c, ecolor=c, elinewidth=0.8, capsize=1.5, lw=0)
     ax_r.axhline(0.0, color="k", lw=0.8)
     if outlier_probability is not None:
@@ -563,7 +570,7 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
         handles.append(Line2D([], [], ls="", marker="o", ms=10, mfc="none", mec="red",
                               label=f"outlier probability > 0.5 ({_count(int(out.sum()), 'pick')})"))
     ax.set_ylabel("travel time [s]")
-    ax_r.set_ylabel("residual [ms]\n(observed − median predicted)", fontsize=9)
+    ax_r.set_ylabel(f"residual [{res_unit}]\n(observed − median predicted)", fontsize=9)
     default = ARC_LABEL if planet_radius is not None else "source–receiver distance"
     ax_r.set_xlabel(x_label or f"{default} [{length_unit}]")
     _arc_axes(ax, planet_radius)

@@ -128,6 +128,19 @@ def test_travel_time_fit_figure(picks, tmp_path):
     assert "P picks ± 1 sd" in legend and "S picks ± 1 sd" in legend
 
 
+def test_travel_time_fit_residuals_in_seconds_for_earthquake_size_errors(picks):
+    """Pick errors of tenths of a second (local earthquakes, common practice) give residuals in s."""
+    x, observed, sigma, predicted, source, wave = picks
+    scale = 100.0  # the same picks on a scale where errors are 0.2 s
+    fig = plots.plot_travel_time_fit(x, observed * scale, sigma * scale, predicted * scale, source=source,
+                                     wave=wave)
+    ax_r = fig.axes[1]
+    assert "[s]" in ax_r.get_ylabel() and "[ms]" not in ax_r.get_ylabel()
+    plotted = np.concatenate([c.lines[0].get_ydata() for c in ax_r.containers])
+    expected = observed * scale - np.median(predicted * scale, axis=0)
+    np.testing.assert_allclose(np.sort(plotted), np.sort(expected))
+
+
 def test_prior_predictive_figure(picks, tmp_path):
     x, observed, sigma, _, source, wave = picks
     prior_times = x[None, :] / np.random.default_rng(15).uniform(100.0, 2000.0, (300, 1))
