@@ -17,9 +17,12 @@ What is printed:
 3. The settings and cost to reach a stated error of 0.1 nats, extrapolated from the
    pilots: both estimators' errors fall as 1 / sqrt(work) (nested sampling:
    sqrt(H / live points), Skilling 2006; stepping-stone: Monte Carlo averages over the
-   kept steps), so work and time scale with (error / 0.1)^2. Short stepping-stone rungs
-   understate their autocorrelation times (see docs/evidence.md), so its extrapolation is
-   optimistic; ``--full`` measures.
+   kept steps), so work and time scale with (error / 0.1)^2. "rows" counts parameter
+   vectors evaluated, "calls" the batched log-likelihood calls that carried them (one call
+   costs about the same for 1 row as for 40). The extrapolation assumes the error falls as
+   1 / sqrt(work) from the pilot size. For the stepping-stone method it need not: on
+   longer rungs the autocorrelation times come out longer and a remaining drift is added to
+   the stated error (docs/evidence.md, "Cost"); ``--full`` measures.
 4. With ``--full``: one run at the extrapolated settings, measured (several minutes).
 
 Timings on a shared machine move by tens of per cent between runs; the load average is
@@ -151,7 +154,8 @@ def main(argv=None) -> int:
 
         # 2. pilots
         print("2. pilot runs (two seeds each)")
-        header = f"   {'estimator':<34} {'seed':>4} {'log Z':>10} {'stated err':>10} {'rows':>10} {'time s':>8}"
+        header = (f"   {'estimator':<34} {'seed':>4} {'log Z':>10} {'stated err':>10} {'rows':>10} {'calls':>8} "
+                  f"{'time s':>8}")
         print(header)
         pilots = {}
         for label, fn in ((f"nested sampling, {args.live_points} live points",
@@ -163,7 +167,7 @@ def main(argv=None) -> int:
                 r = fn(seed)
                 runs.append(r)
                 print(f"   {label:<34} {seed:>4} {r.log_z:10.3f} {r.log_z_error:10.3f} {r.n_calls:10,d} "
-                      f"{r.seconds:8.1f}")
+                      f"{r.details['likelihood_calls']:8,d} {r.seconds:8.1f}")
             d = runs[0].log_z - runs[1].log_z
             comb = math.hypot(runs[0].log_z_error, runs[1].log_z_error)
             print(f"   {'':<34} seed 1 - seed 2 = {d:+.3f} ({abs(d) / comb:.1f} combined stated errors)")
@@ -176,12 +180,13 @@ def main(argv=None) -> int:
 
         # 3. extrapolation
         print(f"3. extrapolated to a stated error of {TARGET} nats (work and time x (error / {TARGET})^2)")
-        print(f"   {'estimator':<20} {'settings':<34} {'rows':>12} {'time s':>9}")
+        print(f"   {'estimator':<20} {'settings':<34} {'rows':>12} {'calls':>10} {'time s':>9}")
         plan = {}
         for name, runs in (("nested sampling", (ns_a, ns_b)), ("stepping-stone", (ss_a, ss_b))):
             err = float(np.mean([r.log_z_error for r in runs]))
             factor = (err / TARGET) ** 2
             rows = np.mean([r.n_calls for r in runs]) * factor
+            calls = np.mean([r.details["likelihood_calls"] for r in runs]) * factor
             secs = np.mean([r.seconds for r in runs]) * factor
             if name == "nested sampling":
                 setting = int(math.ceil(args.live_points * factor))
@@ -190,15 +195,15 @@ def main(argv=None) -> int:
                 setting = int(math.ceil(args.steps * factor))
                 text = f"{args.rungs} rungs x {setting} kept steps"
             plan[name] = setting
-            print(f"   {name:<20} {text:<34} {rows:12,.0f} {secs:9.0f}")
+            print(f"   {name:<20} {text:<34} {rows:12,.0f} {calls:10,.0f} {secs:9.0f}")
         print()
 
         if args.full:
             print("4. measured at the extrapolated settings")
             r = run_nested(problem, plan["nested sampling"], 3)
-            print(f"   {r.describe()}")
+            print(f"   {r.describe()}; {r.details['likelihood_calls']:,} batched calls")
             s = run_stepping(problem, args.rungs, plan["stepping-stone"], 3)
-            print(f"   {s.describe()}")
+            print(f"   {s.describe()}; {s.details['likelihood_calls']:,} batched calls")
             print(f"   {ev.agreement(r, s)['message']}")
         else:
             print("4. (run with --full to measure at the extrapolated settings)")

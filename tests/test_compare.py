@@ -19,6 +19,9 @@ What is checked, and against what:
   estimators against each other, within their combined errors.
 * Model probabilities against Bayes' theorem for models worked by hand, the verbal scale
   against its stated thresholds, and the model-averaged density against its definition.
+* Nuisance parameters (unknown origin times marginalised, a free noise scale sampled): the two
+  estimators agree, and with two exchangeable velocities (P(monotone) = 1/2, combinatorics)
+  the monotone model reaches its cap ln 2 by the two-run and the one-run route.
 
 The default suite uses few live points and short ladders; the `slow` versions repeat the
 layered checks with both estimators at longer settings.
@@ -323,3 +326,97 @@ def test_lvz_with_first_arrivals_only_is_prior_driven(tmp_path):
     depth = [s for s in t["sensitivity"] if s["parameter"].startswith("depth of interface 2")][0]
     assert depth["median_monotone"] > 1.2 * 10.0, depth
     assert t["one_run_agrees_with_two_runs"]
+
+
+# ============================================================================ nuisance parameters
+def nuisance_case(folder: Path, settings: cmp.EvidenceSettings) -> tuple[dict, object]:
+    """Two surface shots with UNKNOWN origin times (marginalised, normal prior) and a FREE noise scale.
+
+    Synthetic: one 4 m layer at 500 m/s over a 1500 m/s half-space (a monotone truth), shots at
+    x = -1 and 61 m with origin times 0.3 s and 0.7 s that the tables leave empty, 13 receivers.
+    """
+    folder.mkdir(parents=True, exist_ok=True)
+    stations = ", ".join(f'{{ name = "g{i:02d}", x = {5.0 * i!r}, y = 0.0 }}' for i in range(13))
+    (folder / "survey.toml").write_text(f"""\
+title = "synthetic line with untimed shots at an invented site"
+units = "m"
+seed = 8
+[model]
+thickness = [4.0]
+vp = [500.0, 1500.0]
+vpvs = [2.0, 2.0]
+[survey]
+kind = "network"
+waves = ["P"]
+sigma = 0.001
+hide_depth = false
+hide_origin_time = true
+events = [{{ name = "west", x = -1.0, y = 0.0, depth = 0.0, origin_time = 0.3 }},
+          {{ name = "east", x = 61.0, y = 0.0, depth = 0.0, origin_time = 0.7 }}]
+stations = [{stations}]
+[output]
+picks = "picks.csv"
+""")
+    make_synthetic(folder / "survey.toml")
+    (folder / "run.toml").write_text("""\
+title = "untimed shots, one layer over a half-space"
+units = "m"
+[data]
+picks = "picks.csv"
+sources = "sources.csv"
+receivers = "receivers.csv"
+[model]
+layers = 1
+vpvs_mode = "none"
+[prior]
+thickness = { dist = "uniform", low = 0.5, high = 20.0 }
+vp = { dist = "uniform", low = 150.0, high = 3000.0 }
+[constraints]
+increasing_velocity = true
+[noise]
+scale = "free"
+scale_prior = { dist = "lognormal", median = 1.0, sigma_log = 0.5 }
+[nuisance]
+origin_time = "normal"
+origin_time_mean = 0.0
+origin_time_sd = 2.0
+[output]
+folder = "run"
+""")
+    problem = build_problem(cmp.with_constraints(load_config(folder / "run.toml"), slower=[2]))
+    out = cmp.lvz_test(folder / "run.toml", layer=2, settings=settings, folder=folder / "lvz", progress=False)
+    return out, problem
+
+
+def check_nuisance(out: dict, problem) -> None:
+    # the estimators did see the nuisance parameters: a sampled noise scale, origin times marginalised
+    assert problem.ndim == 4 and len(problem.nuisance_names) == 1, problem.names
+    assert problem.marginal_origin and not np.any(problem.picks.origin_time_known)
+    t = out["tests"][0]
+    for estimates in (out["monotone"]["estimates"], t["estimates"]):
+        ns, ss = estimates["nested"], estimates["stepping"]
+        comb = math.hypot(ns["log_z_error"], ss["log_z_error"])
+        assert abs(ns["log_z"] - ss["log_z"]) < 3 * comb, (ns["log_z"], ss["log_z"], comb)
+    # permissive prior: two exchangeable velocities, so P(monotone) = 1/2 (combinatorics); the head wave
+    # from the half-space excludes an inversion, so B(monotone : permissive) reaches its cap 2
+    # (encompassing-prior identity, Klugkist, Kato & Hoijtink 2005; from memory), by both routes
+    assert t["prior_inversion_probability"] == pytest.approx(0.5, abs=1e-9)
+    assert t["posterior_inversion_probability"] < 0.02
+    assert -t["log_bayes_factor"] == pytest.approx(math.log(2.0), abs=3 * t["log_bayes_factor_error"])
+    assert t["one_run_agrees_with_two_runs"]
+    assert t["one_run_log_bayes_factor_monotone"] == pytest.approx(math.log(2.0), abs=0.05)
+
+
+def test_nuisance_parameters_small(tmp_path):
+    out, problem = nuisance_case(tmp_path, cmp.EvidenceSettings(live_points=50, rungs=8, rung_steps=80,
+                                                                rung_burn=20, walkers=16, seed=4))
+    check_nuisance(out, problem)
+
+
+@pytest.mark.slow
+def test_nuisance_parameters_long(tmp_path):
+    out, problem = nuisance_case(tmp_path, LONG_BOTH)
+    check_nuisance(out, problem)
+    t = out["tests"][0]
+    assert out["monotone"]["estimators_agree"] and t["estimators_agree"]
+    assert t["log_bayes_factor_error"] < 0.3
