@@ -1620,6 +1620,25 @@ def _estimate_rows(estimates: dict) -> list:
     return rows
 
 
+#: Spread of log Z [nats] beyond which the comparison figure uses a symmetric-log axis, linear within SYMLOG_LINEAR_NATS.
+SYMLOG_FROM_NATS = 50.0
+SYMLOG_LINEAR_NATS = 10.0
+
+
+def evidence_axis(spread: float) -> tuple:
+    """Axis of the log-evidence figure for candidates spanning ``spread`` nats of log Z.
+
+    Returns (scale, limits, label note): ``"linear"`` (limits None, no note) up to
+    ``SYMLOG_FROM_NATS``; beyond, ``"symlog"`` (linear within
+    ``SYMLOG_LINEAR_NATS``) from twice the spread below the best to
+    ``SYMLOG_LINEAR_NATS`` above it, so that near-best models stay readable.
+    """
+    if not spread > SYMLOG_FROM_NATS:
+        return "linear", None, ""
+    return ("symlog", (-2.0 * spread, SYMLOG_LINEAR_NATS),
+            f"\n(axis linear within ±{SYMLOG_LINEAR_NATS:g} nats, logarithmic beyond)")
+
+
 def _comparison_figures(doc: dict, folder: Path) -> list:
     """Figures of a comparison: log Z per model and estimator, the layer-count posterior, the averaged density."""
     import matplotlib
@@ -1648,7 +1667,12 @@ def _comparison_figures(doc: dict, folder: Path) -> list:
     ax.axvline(0.0, color="0.6", lw=0.8)
     for step in (-1.0, -3.0, -5.0):  # Kass & Raftery (1995) steps in ln B (from memory)
         ax.axvline(step, color="0.85", lw=0.8, ls=":")
-    ax.set_xlabel("log Z − log Z of the best model [nats]; bars ± 2 stated errors; dotted: ln B = −1, −3, −5")
+    scale, limits, scale_note = evidence_axis(best - min(m["log_z"] for m in models))
+    if scale == "symlog":  # keep the near-best models readable next to far-worse ones
+        ax.set_xscale("symlog", linthresh=SYMLOG_LINEAR_NATS)
+        ax.set_xlim(*limits)
+    ax.set_xlabel("log Z − log Z of the best model [nats]; bars ± 2 stated errors; dotted: ln B = −1, −3, −5"
+                  + scale_note, fontsize=9)
     ax.legend(fontsize=8, loc="best")
     fig.tight_layout()
     figures.append(("log_evidence", "Log evidence of each candidate", fig,

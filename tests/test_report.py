@@ -667,3 +667,13 @@ def test_sphere_run_words_and_depth_grid():
     doi = np.array([4900.0])  # rays through the core: 1.3 x 4900 km would be 6370 km
     assert report._depth_grid(model, doi)[-1] == pytest.approx(1.3 * 4900.0)
     assert report._depth_grid(model, doi, limit=5200.0)[-1] == 5200.0
+
+
+def test_log_evidence_axis_turns_symmetric_log_for_far_worse_candidates():
+    """Candidates tens of thousands of nats apart keep the near-best ones readable (symlog axis)."""
+    from invert.report import SYMLOG_FROM_NATS, SYMLOG_LINEAR_NATS, evidence_axis
+
+    assert evidence_axis(3.0) == ("linear", None, "")
+    assert evidence_axis(SYMLOG_FROM_NATS)[0] == "linear"
+    scale, limits, note = evidence_axis(15700.0)
+    assert scale == "symlog" and limits == (-31400.0, SYMLOG_LINEAR_NATS) and "logarithmic" in note
