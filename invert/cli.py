@@ -86,6 +86,8 @@ def _cmd_report(args) -> int:
     if comparison_kind(args.run_dir) is not None:  # a folder of 'invert compare' or 'invert lvz-test'
         html = write_comparison_report(Path(args.run_dir), png=args.png)
         print(f"Report written to {html} (open it in a browser; it works offline)")
+        if args.png:
+            print(f"Figures written as PNG files to {Path(args.run_dir) / 'figures'}/")
         print(CAUTION)
         return 0
     html = write_report(Path(args.run_dir), png=args.png, bedrock_velocity=args.bedrock_vs,

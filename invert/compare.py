@@ -231,6 +231,53 @@ def kass_raftery(log_b: float) -> str:
     return "very strong"
 
 
+def at_prior_cap(log_b: float, log_b_error: float, log_cap: float) -> bool:
+    """Whether ln B (slower : monotone) sits at the most the prior lets any data give the monotone model.
+
+    The encompassing-prior identity caps B(monotone : slower) at 1 / P(monotone)
+    (see :func:`invert.evidence.encompassing_bayes_factor`). The value is "at the
+    cap" when it favours the monotone model and ``-log_b`` reaches
+    ``log_cap`` within twice its stated error.
+
+    Parameters
+    ----------
+    log_b : float
+        ln B (slower : monotone) [nats].
+    log_b_error : float
+        Its standard error [nats].
+    log_cap : float
+        ln (1 / P(monotone)) under the permissive prior [nats].
+    """
+    log_b, log_b_error, log_cap = float(log_b), float(log_b_error), float(log_cap)
+    if not (math.isfinite(log_b) and math.isfinite(log_cap)) or log_b >= 0:
+        return False
+    err = log_b_error if math.isfinite(log_b_error) else 0.0
+    return -log_b >= log_cap - 2.0 * err
+
+
+def lvz_strength(log_b: float, log_b_error: float, log_cap: float, first_arrivals_only: bool = False) -> str:
+    """Verbal strength of ln B (slower : monotone) for the low-velocity-zone test.
+
+    The Kass & Raftery label (:func:`kass_raftery`), except when ln B sits at
+    the prior's cap (:func:`at_prior_cap`): then the size of ln B is set by the
+    prior, not by the data, and the label says so.
+
+    Parameters
+    ----------
+    log_b, log_b_error : float
+        ln B (slower : monotone) and its standard error [nats].
+    log_cap : float
+        ln (1 / P(monotone)) under the permissive prior [nats].
+    first_arrivals_only : bool
+        Whether the data hold first arrivals only.
+    """
+    if at_prior_cap(log_b, log_b_error, log_cap):
+        text = (f"at the prior's limit (cap {float(log_cap):.2f}): not evidence from the data" if first_arrivals_only
+                else f"at the prior's limit (cap {float(log_cap):.2f}): its size is set by the prior")
+        return text
+    return kass_raftery(log_b) + (" (within twice the error)" if abs(log_b) < 2 * log_b_error else "")
+
+
 def model_probabilities(log_z: np.ndarray, log_z_error: np.ndarray, prior_odds: np.ndarray,
                         rng: np.random.Generator | None = None, draws: int = PROBABILITY_DRAWS) -> dict:
     """Posterior model probabilities and their error bars.
@@ -874,7 +921,8 @@ def lvz_test(config_path, *, layer: int | None = None, settings: EvidenceSetting
             "layer": k, "log_z_permissive": perm_ev.log_z, "log_z_permissive_error": perm_ev.log_z_error,
             "log_bayes_factor": log_b, "log_bayes_factor_error": log_b_err,
             "favours": "slower layer" if log_b > 0 else "monotone",
-            "strength": kass_raftery(log_b) + (" (within twice the error)" if abs(log_b) < 2 * log_b_err else ""),
+            "strength": lvz_strength(log_b, log_b_err, cross["log_cap"], coverage["first_arrivals_only"]),
+            "at_prior_cap": at_prior_cap(log_b, log_b_err, cross["log_cap"]),
             "posterior_inversion_probability": float(inv.mean()),
             "posterior_inversion_probability_error": cross["posterior_probability_error"],
             "prior_inversion_probability": 1.0 - prior_mono["exact"],
@@ -917,6 +965,18 @@ FIRST_ARRIVAL_LIMIT = (
     "(ignoring a slower layer makes the refractor below look deeper).")
 
 
+#: Said of a layer whose ln B (monotone : slower) sits at the cap ln(1 / P(monotone)).
+LVZ_AT_CAP = ("ln B (monotone : slower) = {log_b:.2f} is at the prior's limit, ln(1/P(monotone)) = {cap:.2f}: "
+              "no data could favour the monotone model more under these priors. Its size measures the prior room "
+              "given to a slower layer, not evidence from the data.")
+
+
+def lvz_test_strength(test: dict) -> str:
+    """:func:`lvz_strength` of one entry of ``lvz_test(...)["tests"]`` (also of one read back from ``lvz_test.json``)."""
+    return lvz_strength(test["log_bayes_factor"], test["log_bayes_factor_error"], test["log_cap_monotone"],
+                        bool(test.get("coverage", {}).get("first_arrivals_only", False)))
+
+
 def _lvz_markdown(result: dict) -> str:
     units = result["units"]
     mono = result["monotone"]
@@ -935,7 +995,7 @@ def _lvz_markdown(result: dict) -> str:
                f"{t['one_run_log_bayes_factor_monotone']:.2f} ± {t['one_run_log_bayes_factor_monotone_error']:.2f}")
         lines.append(f"| {t['layer']} | {t['log_z_permissive']:.2f} ± {t['log_z_permissive_error']:.2f} | "
                      f"{t['log_bayes_factor']:+.2f} ± {t['log_bayes_factor_error']:.2f} | {t['favours']} | "
-                     f"{t['strength']} | {t['prior_inversion_probability']:.3f} | "
+                     f"{lvz_test_strength(t)} | {t['prior_inversion_probability']:.3f} | "
                      f"{t['posterior_inversion_probability']:.3f} ± "
                      f"{t['posterior_inversion_probability_error']:.3f} | "
                      f"{one} | {t['log_cap_monotone']:.2f} | "
@@ -964,6 +1024,8 @@ def _lvz_markdown(result: dict) -> str:
             lines.append(f"The data hold {cov['reflections_from_base_or_below']} reflection pick(s) from interface "
                          f"{k} or below and {cov['buried_sources_or_receivers']} pick(s) with buried sources or "
                          "receivers: these see the slower layer's travel time directly.")
+        if at_prior_cap(t["log_bayes_factor"], t["log_bayes_factor_error"], t["log_cap_monotone"]):
+            lines += ["", LVZ_AT_CAP.format(log_b=-t["log_bayes_factor"], cap=t["log_cap_monotone"])]
         lines += ["", "What the verdict moves (permissive model; contraction = 1 − posterior variance / prior "
                       "variance, near 0 means the data say nothing about the parameter; shift = monotone median "
                       "minus permissive median, in permissive posterior sd):", "",

@@ -270,6 +270,18 @@ def plot_velocity_depth(model: LayerModel, depth_grid=None, *, waves: Sequence[s
 
 
 # -------------------------------------------------------------------- corner
+#: The message the corner package logs (on the root logger) when a 2-D panel has too few distinct points.
+CORNER_CONTOUR_MESSAGE = "Too few points to create valid contours"
+
+
+def _not_corner_contour_message(record) -> bool:
+    """Logging filter: False (drop) for the corner package's too-few-points message, True for anything else."""
+    try:
+        return record.getMessage() != CORNER_CONTOUR_MESSAGE
+    except Exception:  # a malformed record is not ours to judge: let it through
+        return True
+
+
 def plot_corner(samples, labels: Sequence[str], *, truths=None, path=None) -> Figure:
     """Corner plot of free parameters (pairwise 2-D and 1-D marginals).
 
@@ -292,9 +304,16 @@ def plot_corner(samples, labels: Sequence[str], *, truths=None, path=None) -> Fi
     # corner's own layout: 2 in per panel, 1 in for labels, 0.4 in margin, 5 % gaps
     dim = 1.0 + 2.0 * k + 2.0 * (k - 1) * 0.05 + 0.4
     fig = _figure(dim, dim)
-    corner.corner(x, labels=list(labels), truths=truths, truth_color=_TRUTH_COLOR, fig=fig,
-                  quantiles=[0.16, 0.5, 0.84], levels=(0.68, 0.95), label_kwargs={"fontsize": 9},
-                  plot_datapoints=False, fill_contours=False)
+    import logging
+
+    root = logging.getLogger()
+    root.addFilter(_not_corner_contour_message)  # corner logs it through logging.warning (the root logger)
+    try:
+        corner.corner(x, labels=list(labels), truths=truths, truth_color=_TRUTH_COLOR, fig=fig,
+                      quantiles=[0.16, 0.5, 0.84], levels=(0.68, 0.95), label_kwargs={"fontsize": 9},
+                      plot_datapoints=False, fill_contours=False)
+    finally:
+        root.removeFilter(_not_corner_contour_message)
     note = "; green: true values" if truths is not None else ""
     fig.suptitle(f"Posterior marginals (dashed: 16/50/84 % quantiles; contours enclose 68/95 %{note})",
                  fontsize=10)

@@ -585,7 +585,7 @@ def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
 
 
 # =================================================================== sections
-def _section_run(an: _Analysis) -> list:
+def _section_run(an: _Analysis, fit: _Fit | None = None) -> list:
     run, cfg, problem = an.run, an.run.config, an.run.problem
     picks = problem.picks
     out = [_Heading(*SECTIONS[0])]
@@ -606,15 +606,28 @@ def _section_run(an: _Analysis) -> list:
     described = [s for s in picks.describe().splitlines() if not s.startswith("Picks by wave and branch")]
     out.append(_Items(files + described))
     rows = []
+    # the same abscissa as the travel-time figures (plots.pick_abscissa): receiver depth for a borehole...
+    if fit is not None and fit.abscissa is not None:
+        abscissa, kind = np.asarray(fit.abscissa, dtype=float), fit.abscissa_kind
+    elif problem.sphere:
+        abscissa, kind = np.asarray(picks.distance, dtype=float), "arc"
+    else:
+        from .plots import pick_abscissa
+
+        abscissa, _, kind = pick_abscissa(picks.distance, picks.source_depth, picks.receiver_depth,
+                                          source=picks.source_id, receiver=picks.receiver_id, length_unit=an.length)
+    span_words = {"arc": "arc distance range", "receiver_depth": "receiver depth range",
+                  "source_depth": "source depth range",
+                  "straight_line": "straight-line distance range"}.get(kind, "distance range")
     keys = list(zip(picks.wave, picks.branch, picks.interface))
     for key in sorted(set(keys), key=lambda k: (k[0], k[1], int(k[2]))):
         sel = np.array([k == key for k in keys])
         sig = np.asarray(picks.sigma)[sel]
         rows.append([key[0], key[1], str(int(key[2])) if int(key[2]) else "–", str(int(sel.sum())),
-                     f"{np.median(sig) * 1e3:.3g}", f"{np.nanmin(picks.distance[sel]):g} – "
-                     f"{np.nanmax(picks.distance[sel]):g}"])
+                     f"{np.median(sig) * 1e3:.3g}", f"{np.nanmin(abscissa[sel]):g} – "
+                     f"{np.nanmax(abscissa[sel]):g}"])
     out.append(_Table(["wave", "branch", "interface", "picks", "median pick sd [ms]",
-                       ("arc " if problem.sphere else "") + f"distance range [{an.length}]"], rows,
+                       f"{span_words} [{an.length}]"], rows,
                       "Picks by wave and branch." + (" Distances are arcs along the surface of the planet."
                                                      if problem.sphere else ""), "llr"))
     from .run import data_checks
@@ -1509,7 +1522,7 @@ def write_report(run_dir, png: bool = False, *, bedrock_velocity: float = BEDROC
         fwd = _forward_quantities(an, bedrock_velocity)
         fit = _fit(an, rng)
         fwd["prior_outside"] = _prior_outside(fwd, fit, run.problem.picks)
-        blocks = _section_run(an)
+        blocks = _section_run(an, fit)
         blocks += _section_convergence(an)
         blocks += _section_estimates(an)
         blocks += _section_derived(an, fwd, bedrock_velocity, site_classes)
@@ -1898,7 +1911,7 @@ def _lvz_figure(doc: dict) -> _Figure:
 
 
 def _lvz_blocks(doc: dict) -> tuple:
-    from .compare import FIRST_ARRIVAL_LIMIT
+    from .compare import FIRST_ARRIVAL_LIMIT, LVZ_AT_CAP, at_prior_cap, lvz_test_strength
 
     mono = doc["monotone"]
     tests = doc["tests"]
@@ -1917,7 +1930,7 @@ def _lvz_blocks(doc: dict) -> tuple:
         one = (f"< {_f(t['one_run_log_bayes_factor_monotone'])}" if t["one_run_upper_bound_only"] else
                _pm(t["one_run_log_bayes_factor_monotone"], t["one_run_log_bayes_factor_monotone_error"]))
         rows.append([str(t["layer"]), _pm(t["log_z_permissive"], t["log_z_permissive_error"]),
-                     _pm(t["log_bayes_factor"], t["log_bayes_factor_error"]), t["favours"], t["strength"],
+                     _pm(t["log_bayes_factor"], t["log_bayes_factor_error"]), t["favours"], lvz_test_strength(t),
                      _pct(t["prior_inversion_probability"]),
                      f"{_pct(t['posterior_inversion_probability'])} ± "
                      f"{_pct(t['posterior_inversion_probability_error'])}", one, _f(t["log_cap_monotone"]),
@@ -1951,6 +1964,8 @@ def _lvz_blocks(doc: dict) -> tuple:
             blocks.append(_Para(f"The data hold {cov['reflections_from_base_or_below']} reflection pick(s) from "
                                 f"interface {k} or below and {cov['buried_sources_or_receivers']} pick(s) with buried "
                                 "sources or receivers: these see the slower layer's travel time directly.", "note"))
+        if at_prior_cap(t["log_bayes_factor"], t["log_bayes_factor_error"], t["log_cap_monotone"]):
+            blocks.append(_Para(LVZ_AT_CAP.format(log_b=-t["log_bayes_factor"], cap=t["log_cap_monotone"]), "warn"))
         srows = [[x["parameter"], _num(x["contraction"], 2), _num(x["median_permissive"]),
                   _num(x["median_monotone"]), _num(x["shift_in_sd"], 2)] for x in t["sensitivity"]]
         blocks.append(_Table(["parameter", "contraction", "median (slower allowed)", "median (monotone)",
@@ -1981,7 +1996,7 @@ def _lvz_blocks(doc: dict) -> tuple:
     blocks.append(_Items([_sentence(n) for n in notes]) if notes else _Para("No notes."))
     blocks.append(_Heading(*LVZ_SECTIONS[4]))
     blocks.append(_Para(COMPARISON_CAUTIONS, "warn"))
-    words = "; ".join(f"layer {t['layer']}: {t['favours']} ({t['strength']}, P(inversion | data) "
+    words = "; ".join(f"layer {t['layer']}: {t['favours']} ({lvz_test_strength(t)}, P(inversion | data) "
                       f"{_pct(t['posterior_inversion_probability'])})" for t in tests)
     verdict = (_Para(f"{words}. Some checks DISAGREE (see below): the verdict is provisional.", "bad") if any_bad
                else _Para(f"{words}. Read what first arrivals cannot see, and the cautions.", "good"))

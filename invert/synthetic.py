@@ -37,6 +37,14 @@ from .model import LayerModel
 
 SURVEY_KINDS = ("line", "borehole", "network", "global")
 
+#: Keys of ``[survey]`` read for each kind (:func:`layout`, :func:`network`, :func:`global_survey`).
+SURVEY_KEYS = {
+    "line": frozenset({"kind", "shots", "receivers", "source_depth", "waves", "branches", "sigma"}),
+    "borehole": frozenset({"kind", "offsets", "depths", "source_depth", "waves", "branches", "sigma"}),
+    "network": frozenset({"kind", "events", "stations", "waves", "sigma", "hide_depth", "hide_origin_time"}),
+    "global": frozenset({"kind", "events", "stations", "planet_radius", "max_diffraction", "waves", "sigma"}),
+}
+
 
 def _unknown_keys(keys, allowed) -> str:
     """'unknown key(s) ...' with a "did you mean" for near misses, as for run descriptions ("" if none)."""
@@ -282,9 +290,13 @@ def make_synthetic(spec_path) -> Path:
         raise ConfigError(spec_path, "", message)
     if isinstance(spec.get("output"), dict) and _unknown_keys(spec["output"], {"picks"}):
         raise ConfigError(spec_path, "output", _unknown_keys(spec["output"], {"picks"}))
+    survey = spec.get("survey", {})
+    if isinstance(survey, dict) and survey.get("kind") in SURVEY_KEYS:
+        message = _unknown_keys(survey, SURVEY_KEYS[survey["kind"]])
+        if message:
+            raise ConfigError(spec_path, "survey", f"{message} (for kind = {survey['kind']!r})")
     try:
         model = model_from_table(spec.get("model", {}))
-        survey = spec.get("survey", {})
         rng = np.random.default_rng(int(spec.get("seed", 0)))
         out = spec.get("output", {})
         folder = spec_path.parent

@@ -493,6 +493,43 @@ def test_synth_unknown_key_suggests_the_near_match(tmp_path, capsys):
     assert "'sed'" in err and "did you mean 'seed'" in err
 
 
+def test_synth_unknown_survey_key_suggests_the_near_match(tmp_path, capsys):
+    spec = tmp_path / "survey.toml"
+    spec.write_text(LINE_SPEC.replace("receivers =", "recievers ="))
+    assert main(["synth", str(spec)]) == 2
+    err = capsys.readouterr().err
+    assert "survey" in err and "'recievers'" in err and "did you mean 'receivers'" in err
+    assert not (tmp_path / "line.csv").exists()
+    # a key meant for another kind (borehole 'depths' on a line) is not silently ignored either
+    spec.write_text(LINE_SPEC.replace('kind = "line"', 'kind = "line"\ndepths = [1.0, 2.0]'))
+    assert main(["synth", str(spec)]) == 2
+    assert "'depths'" in capsys.readouterr().err
+
+
+def test_report_png_of_a_low_velocity_zone_folder_says_where_the_figures_went(tmp_path, capsys):
+    import json
+
+    # a hand-made result of 'invert lvz-test' (invented numbers; only the report writing is exercised)
+    test = {"layer": 2, "log_z_permissive": -10.0, "log_z_permissive_error": 0.2, "log_bayes_factor": -0.5,
+            "log_bayes_factor_error": 0.3, "favours": "monotone", "strength": "not worth more than a bare mention",
+            "prior_inversion_probability": 0.5, "posterior_inversion_probability": 0.2,
+            "posterior_inversion_probability_error": 0.02, "one_run_log_bayes_factor_monotone": 0.47,
+            "one_run_log_bayes_factor_monotone_error": 0.03, "one_run_upper_bound_only": False,
+            "log_cap_monotone": 0.69, "one_run_agrees_with_two_runs": True, "estimators_agree": None,
+            "sensitivity": [], "notes": [],
+            "coverage": {"reflections_from_base_or_below": 3, "buried_sources_or_receivers": 0,
+                         "first_arrivals_only": False}}
+    doc = {"config": "synthetic.toml", "title": "synthetic", "units": "m", "settings": {},
+           "monotone": {"log_z": -9.5, "log_z_error": 0.2, "estimators_agree": None, "notes": []}, "tests": [test]}
+    (tmp_path / "lvz_test.json").write_text(json.dumps(doc))
+    assert main(["report", str(tmp_path), "--png"]) == 0
+    out = capsys.readouterr().out
+    assert f"Figures written as PNG files to {tmp_path / 'figures'}/" in out
+    assert (tmp_path / "figures" / "lvz_bayes_factors.png").is_file()
+    assert main(["report", str(tmp_path)]) == 0
+    assert "PNG" not in capsys.readouterr().out
+
+
 def test_progress_bar_stays_silent_when_stderr_is_not_a_terminal(monkeypatch):
     import io
 

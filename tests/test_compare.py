@@ -128,6 +128,43 @@ def test_kass_raftery_thresholds():
     assert cmp.kass_raftery(-5.01) == "very strong"
 
 
+def lvz_result_at_cap(log_b=-1.21, log_b_err=0.31, first_only=True) -> dict:
+    """A hand-made ``lvz_test`` result: three exchangeable uniform velocities, so P(monotone) = 1/3
+    (combinatorics) and the cap ln(1/P(monotone)) = ln 3; ln B as in the hidden-LVZ case study."""
+    test = {"layer": 2, "log_z_permissive": -10.0, "log_z_permissive_error": 0.2,
+            "log_bayes_factor": log_b, "log_bayes_factor_error": log_b_err, "favours": "monotone",
+            "strength": cmp.kass_raftery(log_b), "prior_inversion_probability": 2 / 3,
+            "posterior_inversion_probability": 0.02, "posterior_inversion_probability_error": 0.01,
+            "one_run_log_bayes_factor_monotone": 1.08, "one_run_log_bayes_factor_monotone_error": 0.01,
+            "one_run_upper_bound_only": False, "log_cap_monotone": math.log(3.0),
+            "one_run_agrees_with_two_runs": True, "estimators_agree": None, "sensitivity": [],
+            "coverage": {"reflections_from_base_or_below": 0, "buried_sources_or_receivers": 0,
+                         "first_arrivals_only": first_only}, "notes": []}
+    return {"config": "synthetic.toml", "title": "synthetic", "units": "m", "settings": {},
+            "monotone": {"log_z": -10.0 - log_b, "log_z_error": 0.2, "estimators_agree": None, "notes": []},
+            "tests": [test]}
+
+
+def test_lvz_strength_at_the_prior_cap_is_not_called_evidence():
+    # B(monotone : slower) <= 1 / P(monotone) (encompassing-prior identity, Klugkist, Kato & Hoijtink 2005;
+    # from memory); with P(monotone) = 1/3 the cap is ln 3 = 1.10 and ln B = -1.21 +- 0.31 sits at it.
+    # Kass & Raftery (1995, from memory) would call 2 ln B = 2.42 "positive"; at the cap that label must go.
+    cap = math.log(3.0)
+    assert cmp.at_prior_cap(-1.21, 0.31, cap)
+    label = cmp.lvz_strength(-1.21, 0.31, cap, first_arrivals_only=True)
+    assert "positive" not in label and "prior's limit" in label and "not evidence from the data" in label
+    # far below the cap (cap 5 nats) or favouring the slower layer: the ordinary Kass & Raftery label
+    assert not cmp.at_prior_cap(-1.21, 0.31, 5.0)
+    assert cmp.lvz_strength(-1.21, 0.31, 5.0, first_arrivals_only=True) == "positive"
+    assert not cmp.at_prior_cap(1.21, 0.31, cap)
+    assert cmp.lvz_strength(1.21, 0.31, cap) == "positive"
+    # the Markdown verdict, even from a stored result whose "strength" still reads "positive"
+    text = cmp._lvz_markdown(lvz_result_at_cap())
+    row = next(line for line in text.splitlines() if line.startswith("| 2 |"))
+    assert "positive" not in row and "not evidence from the data" in row
+    assert "at the prior's limit" in text
+
+
 def test_combined_estimate():
     def res(z, e):
         return cmp.ev.EvidenceResult("x", z, e, 0, 0.0, np.zeros((1, 1)), np.zeros(1))

@@ -105,6 +105,26 @@ def test_corner_figure(batch, tmp_path):
         plots.plot_corner(samples, names[:2])
 
 
+def test_corner_too_few_points_message_is_silenced_and_nothing_else(caplog):
+    import logging
+
+    # eight draws of two parameters: the corner package cannot contour the 2-D panel and says so through
+    # logging.warning (the root logger); that one message is dropped, other messages still pass
+    x = np.random.default_rng(0).normal(size=(8, 2))
+    with caplog.at_level(logging.WARNING):
+        plots.plot_corner(x, ["a [m]", "b [m/s]"])
+        logging.warning("another message")
+    messages = [r.getMessage() for r in caplog.records]
+    assert plots.CORNER_CONTOUR_MESSAGE not in messages
+    assert "another message" in messages
+    # the filter is removed afterwards: the same words logged outside the corner plot are not hidden
+    caplog.clear()
+    with caplog.at_level(logging.WARNING):
+        logging.warning(plots.CORNER_CONTOUR_MESSAGE)
+    assert [r.getMessage() for r in caplog.records] == [plots.CORNER_CONTOUR_MESSAGE]
+    assert plots._not_corner_contour_message not in logging.getLogger().filters
+
+
 def test_travel_time_fit_figure(picks, tmp_path):
     x, observed, sigma, predicted, source, wave = picks
     outlier = np.zeros(30)

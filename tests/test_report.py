@@ -404,6 +404,14 @@ def test_borehole_picks_plotted_against_receiver_depth(deep_well):
     assert "against horizontal" not in figures and "against source–receiver distance" not in figures
 
 
+def test_borehole_pick_table_gives_the_receiver_depth_range(deep_well):
+    # the same abscissa as the figures: twelve receivers at 0.15 ... 1.8 km down the hole, one source 0.1 km
+    # from it (the layout of the deep_well fixture), so the range is 0.15 - 1.8 km, not "0.1 - 0.1"
+    run = _section(deep_well, "run")
+    assert "receiver depth range [km]" in run
+    assert _row(run, "S")[-1] == "0.15 – 1.8"
+
+
 def test_prior_predictive_leaves_out_invalid_prior_models(deep_well):
     # vs up to 3.5 km/s with vp from 1 km/s: many prior draws have Vp/Vs below sqrt(4/3)
     m = re.search(r"(\d+) of (\d+) prior draws give no valid layer model", deep_well)
@@ -602,6 +610,32 @@ def test_lvz_report(lvz_dir):
     assert "first arrivals only" not in page  # the line holds reflections from the base of the slow layer
     doc = json.loads((lvz_dir / "lvz_test.json").read_text())
     assert doc["tests"][0]["favours"] in page
+
+
+def test_lvz_report_at_the_prior_cap_does_not_call_it_evidence(tmp_path):
+    # a hand-made lvz_test.json with the hidden-LVZ case-study numbers: three exchangeable uniform velocities,
+    # so P(monotone) = 1/3 (combinatorics) and the cap is ln 3 = 1.10 (encompassing-prior identity, Klugkist,
+    # Kato & Hoijtink 2005; from memory); ln B = -1.21 +- 0.31 sits at it. The stored label is the old
+    # "positive" (Kass & Raftery 1995 on 2 ln B = 2.42; from memory): the page must not repeat it.
+    import math
+
+    test = {"layer": 2, "log_z_permissive": -10.0, "log_z_permissive_error": 0.2, "log_bayes_factor": -1.21,
+            "log_bayes_factor_error": 0.31, "favours": "monotone", "strength": "positive",
+            "prior_inversion_probability": 2 / 3, "posterior_inversion_probability": 0.02,
+            "posterior_inversion_probability_error": 0.01, "one_run_log_bayes_factor_monotone": 1.08,
+            "one_run_log_bayes_factor_monotone_error": 0.01, "one_run_upper_bound_only": False,
+            "log_cap_monotone": math.log(3.0), "one_run_agrees_with_two_runs": True, "estimators_agree": None,
+            "sensitivity": [], "notes": [],
+            "coverage": {"reflections_from_base_or_below": 0, "buried_sources_or_receivers": 0,
+                         "first_arrivals_only": True}}
+    doc = {"config": "synthetic.toml", "title": "synthetic", "units": "m", "settings": {},
+           "monotone": {"log_z": -8.79, "log_z_error": 0.2, "estimators_agree": None, "notes": []}, "tests": [test]}
+    (tmp_path / "lvz_test.json").write_text(json.dumps(doc))
+    page = report.write_comparison_report(tmp_path).read_text(encoding="utf-8")
+    md = (tmp_path / "report.md").read_text(encoding="utf-8")
+    for text in (page, md):
+        assert "positive" not in text
+        assert "not evidence from the data" in text and "at the prior&#x27;s limit" in text.replace("'", "&#x27;")
 
 
 def test_comparison_report_errors_name_the_file(tmp_path, comparison_dir):
