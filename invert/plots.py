@@ -346,8 +346,76 @@ def _spans_within(values: np.ndarray, groups: np.ndarray) -> float:
     return total
 
 
+#: Largest distance of a receiver from the best straight line through all receivers, as a
+#: fraction of the line length, for the receivers to count as one straight line.
+LINE_TOLERANCE = 0.01
+
+LINE_POSITION_WORDS = "receiver position along the line"
+
+
+def line_positions(receiver_xy, source_xy=None, *, tolerance: float = LINE_TOLERANCE):
+    """Positions along a straight receiver line, or None when the receivers do not form one.
+
+    The line is the principal axis of the distinct receiver positions (least-squares
+    straight line). The receivers form a line when every one lies within
+    ``tolerance`` times the line length (the spread of the receivers along the axis)
+    of it. Positions are the projections on that axis, measured from the end receiver
+    nearest the first receiver given and increasing towards the other end, so the
+    receivers span [0, line length].
+
+    Parameters
+    ----------
+    receiver_xy : (N, 2) array
+        Horizontal receiver coordinates [length] (one row per pick or per receiver;
+        repeated rows are fine). The first row is the "first receiver".
+    source_xy : (M, 2) array, optional
+        Horizontal source coordinates [length] to project on the same line (sources
+        off the line are projected perpendicularly onto it).
+    tolerance : float
+        Allowed distance from the line as a fraction of its length (default 0.01).
+
+    Returns
+    -------
+    None or (receiver_positions (N,), source_positions (M,) or None)
+        Positions along the line [length]; None when a coordinate is not finite,
+        fewer than two distinct receivers exist, or they are not collinear.
+    """
+    r = np.asarray(receiver_xy, dtype=float)
+    if r.ndim != 2 or r.shape[1] != 2 or r.shape[0] == 0:
+        raise ValueError(f"receiver_xy: expected shape (N, 2), got {r.shape}")
+    s = None
+    if source_xy is not None:
+        s = np.asarray(source_xy, dtype=float)
+        if s.ndim != 2 or s.shape[1] != 2:
+            raise ValueError(f"source_xy: expected shape (M, 2), got {s.shape}")
+        if not np.isfinite(s).all():
+            return None
+    if not np.isfinite(r).all():
+        return None
+    distinct = np.unique(r, axis=0)
+    if distinct.shape[0] < 2:
+        return None
+    centre = distinct.mean(axis=0)
+    _, _, vt = np.linalg.svd(distinct - centre, full_matrices=False)
+    axis = vt[0]
+    along = (distinct - centre) @ axis
+    across = (distinct - centre) @ np.array([-axis[1], axis[0]])
+    length = float(along.max() - along.min())
+    if not length > 0 or float(np.abs(across).max()) > tolerance * length:
+        return None
+    first = float((r[0] - centre) @ axis)
+    if abs(first - along.min()) <= abs(first - along.max()):
+        origin, sign = along.min(), 1.0
+    else:
+        origin, sign = along.max(), -1.0
+    rec = sign * ((r - centre) @ axis - origin)
+    src = None if s is None else sign * ((s - centre) @ axis - origin)
+    return rec, src
+
+
 def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiver=None,
-                  length_unit: str = "m") -> tuple[np.ndarray, str, str]:
+                  length_unit: str = "m", source_xy=None, receiver_xy=None,
+                  tolerance: float = LINE_TOLERANCE) -> tuple[np.ndarray, str, str]:
     """What the travel-time figures plot the picks against, chosen from the survey layout.
 
     Within one source's picks, receivers strung down a hole change depth more than
@@ -360,7 +428,11 @@ def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiv
     * sources down a hole (likewise within the picks of each receiver): source depth;
     * both (for instance hole to hole): straight-line source-receiver distance
       sqrt(x^2 + (z_r - z_s)^2);
-    * otherwise (lines and networks at or near the surface): horizontal distance.
+    * otherwise, when the horizontal coordinates of every source and receiver are
+      given (``source_xy``, ``receiver_xy``) and the receivers lie on a straight
+      line (:func:`line_positions`): the receiver position along that line, so
+      that shots fired from either end show as crossing branches;
+    * otherwise (networks, or lines known only by distances): horizontal distance.
 
     Parameters
     ----------
@@ -370,6 +442,11 @@ def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiv
         Source and receiver of each pick (default: all picks from one source, or at
         one receiver).
     length_unit : str
+    source_xy, receiver_xy : (P, 2) arrays, optional
+        Horizontal coordinates of each pick's source and receiver [length] (NaN
+        where unknown; without them, or with any NaN, no line position is used).
+    tolerance : float
+        Collinearity tolerance passed to :func:`line_positions`.
 
     Returns
     -------
@@ -378,7 +455,8 @@ def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiv
     label : str
         Axis label with unit.
     kind : str
-        ``"horizontal"``, ``"receiver_depth"``, ``"source_depth"`` or ``"straight_line"``.
+        ``"horizontal"``, ``"receiver_depth"``, ``"source_depth"``, ``"straight_line"``
+        or ``"line_position"``.
     """
     x = np.asarray(distance, dtype=float)
     zs = np.broadcast_to(np.asarray(source_depth, dtype=float), x.shape)
@@ -402,6 +480,14 @@ def pick_abscissa(distance, source_depth, receiver_depth, *, source=None, receiv
     if down_sources and down_receivers:
         return (np.hypot(x, zr - zs), f"straight-line source–receiver distance [{length_unit}]",
                 "straight_line")
+    if receiver_xy is not None and source_xy is not None:
+        rxy, sxy = np.asarray(receiver_xy, dtype=float), np.asarray(source_xy, dtype=float)
+        if rxy.shape != (x.size, 2) or sxy.shape != (x.size, 2):
+            raise ValueError(f"source_xy, receiver_xy: expected shape ({x.size}, 2) (one row per pick), got "
+                             f"{sxy.shape}, {rxy.shape}")
+        on_line = line_positions(rxy, sxy, tolerance=tolerance)
+        if on_line is not None:
+            return on_line[0], f"{LINE_POSITION_WORDS} [{length_unit}]", "line_position"
     return x.copy(), f"horizontal source–receiver distance [{length_unit}]", "horizontal"
 
 
@@ -448,9 +534,37 @@ def band_quantiles(times, band: float) -> tuple[np.ndarray, np.ndarray, np.ndarr
     return out[0], out[1], out[2]
 
 
+#: Hatch of each source's band (cycled): bands of different sources overlap as a cross-hatch in
+#: both colours instead of a blend of translucent fills that matches neither legend colour.
+_BAND_HATCHES = ("////", "\\\\\\\\", "||||", "----", "++", "xx", "..", "oo")
+
+
+def _band(ax, gx, lo, hi, c, hatch):
+    """A band drawn as a very light fill, a hatch and thin edge lines, all in the source colour."""
+    ax.fill_between(gx, lo, hi, facecolor=c, alpha=0.07, lw=0)
+    ax.fill_between(gx, lo, hi, facecolor="none", edgecolor=c, hatch=hatch, lw=0, alpha=0.45)
+    for edge in (lo, hi):
+        ax.plot(gx, edge, color=c, lw=0.6, alpha=0.8)
+
+
+def _mark_sources(ax, source_positions, colour) -> list:
+    """Triangles on the x axis at the source positions [length]; returns legend handles."""
+    if not source_positions:
+        return []
+    for name, pos in source_positions.items():
+        pos = float(pos)
+        if not np.isfinite(pos):
+            raise ValueError(f"source_positions[{name!r}]: expected a finite position, got {pos}")
+        ax.plot([pos], [0.0], transform=ax.get_xaxis_transform(), ls="", marker="^", ms=9,
+                mfc=colour.get(str(name), "grey"), mec="k", mew=0.6, clip_on=False, zorder=6)
+    return [Line2D([], [], ls="", marker="^", ms=8, mfc="grey", mec="k", mew=0.6,
+                   label="source position (colour: source)")]
+
+
 def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_label, curves=None):
     sources = list(dict.fromkeys(src))
     colour = {name: f"C{i % 10}" for i, name in enumerate(sources)}
+    hatch = {name: _BAND_HATCHES[i % len(_BAND_HATCHES)] for i, name in enumerate(sources)}
     lo, med, hi = band_quantiles(times, band)
     curves = {} if curves is None else curves
     for key in keys:
@@ -468,24 +582,25 @@ def _draw_band_and_picks(ax, x, y, s, times, keys, src, wav, brn, band, band_lab
                                  f"{gx.shape} and {gt.shape}")
             g_order = np.argsort(gx, kind="stable")
             g_lo, g_med, g_hi = band_quantiles(gt[:, g_order], band)
-            ax.fill_between(gx[g_order], g_lo, g_hi, color=c, alpha=0.25, lw=0)
+            _band(ax, gx[g_order], g_lo, g_hi, c, hatch[key[0]])
             ax.plot(gx[g_order], g_med, color=c, lw=1.0)
         else:
-            ax.fill_between(xs, lo[sel][order], hi[sel][order], color=c, alpha=0.25, lw=0)
+            _band(ax, xs, lo[sel][order], hi[sel][order], c, hatch[key[0]])
             ax.plot(xs, med[sel][order], color=c, lw=1.0)
         ax.errorbar(xs, y[sel][order], yerr=s[sel][order], fmt=_WAVE_MARKERS.get(key[1], "^"), ms=4,
                     mfc="white", mec=c, ecolor=c, elinewidth=0.8, capsize=1.5, lw=0)
-    handles = [Patch(facecolor="grey", alpha=0.35, label=band_label),
+    handles = [Patch(facecolor="#f0f0f0", edgecolor="grey", hatch="////", lw=0.6, label=band_label),
                Line2D([], [], color="grey", lw=1.0, label="median prediction")]
     for w in dict.fromkeys(wav):
         handles.append(Line2D([], [], ls="", marker=_WAVE_MARKERS.get(w, "^"), mfc="white", mec="k",
                               label=f"{w} picks ± 1 sd"))
     if len(sources) > 1:
         shown = sources[:10]
-        handles += [Patch(color=colour[n], label=f"source {n}") for n in shown]
+        handles += [Patch(facecolor="white", edgecolor=colour[n], hatch=hatch[n], lw=1.0, label=f"source {n}")
+                    for n in shown]
         if len(sources) > len(shown):
             handles.append(Patch(color="none", label=f"(+{len(sources) - len(shown)} more sources)"))
-    return handles, med
+    return handles, med, colour
 
 
 ARC_LABEL = "distance along the surface (arc)"
@@ -510,7 +625,7 @@ RESIDUAL_SECONDS_FROM = 0.05
 def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, wave=None, branch=None,
                          replicated=None, outlier_probability=None, band: float = 0.9,
                          length_unit: str = "m", x_label: str | None = None, planet_radius: float | None = None,
-                         curves=None, path=None) -> Figure:
+                         curves=None, source_positions=None, path=None) -> Figure:
     """Picks against distance (or depth) with the posterior predictive band and residuals.
 
     Parameters
@@ -547,6 +662,10 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
         through its picks, and break where fewer than half of the draws
         predict an arrival (a shadow). Without curves, lines join the picks
         and break at picks where most draws predict no arrival.
+    source_positions : mapping source name -> float, optional
+        Positions of the sources on the abscissa [length] (line surveys plotted
+        against receiver position along the line); each is marked by a
+        triangle on the x axis in the colour of its picks.
     path : str or Path, optional
 
     Returns
@@ -566,8 +685,9 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
     fig = _figure(8.5, 7.0)
     ax, ax_r = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.4]})
     what = "posterior predictive" if replicated is not None else "posterior prediction"
-    handles, _ = _draw_band_and_picks(ax, x, y, s, band_times, keys, src, wav, brn, band,
-                                      f"{what}, central {band:.0%}", curves)
+    handles, _, colour = _draw_band_and_picks(ax, x, y, s, band_times, keys, src, wav, brn, band,
+                                              f"{what}, central {band:.0%}", curves)
+    handles += _mark_sources(ax, source_positions, colour)
     _, med_pred, _ = band_quantiles(mu, 0.5)
     # Residuals in ms for refraction-size errors, in s for earthquake-size ones.
     res_scale, res_unit = (1.0, "s") if np.nanmedian(s) >= RESIDUAL_SECONDS_FROM else (1e3, "ms")
@@ -601,7 +721,8 @@ def plot_travel_time_fit(distance, observed, sigma, predicted, *, source=None, w
 
 def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=None, wave=None,
                           branch=None, band: float = 0.95, length_unit: str = "m", x_label: str | None = None,
-                          planet_radius: float | None = None, curves=None, path=None) -> Figure:
+                          planet_radius: float | None = None, curves=None, source_positions=None,
+                          path=None) -> Figure:
     """Picks over the travel times predicted by models drawn from the prior.
 
     A prior that covers the data leaves the picks inside the band; picks far
@@ -627,6 +748,10 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
         Prior predictions on a dense distance grid (see
         :func:`plot_travel_time_fit`); lines and bands break where fewer than
         half of the prior models predict an arrival.
+    source_positions : mapping source name -> float, optional
+        Positions of the sources on the abscissa [length] (line surveys plotted
+        against receiver position along the line); each is marked by a
+        triangle on the x axis in the colour of its picks.
     path : str or Path, optional
     """
     x, y, s, t = _pick_arrays(distance, observed, sigma, prior_predicted)
@@ -635,8 +760,9 @@ def plot_prior_predictive(distance, observed, sigma, prior_predicted, *, source=
     keys, src, wav, brn = _pick_groups(x.size, source, wave, branch)
     fig = _figure(8.5, 5.5)
     ax = fig.subplots()
-    handles, _ = _draw_band_and_picks(ax, x, y, s, t, keys, src, wav, brn, band,
-                                      f"prior predictive, central {band:.0%}", curves)
+    handles, _, colour = _draw_band_and_picks(ax, x, y, s, t, keys, src, wav, brn, band,
+                                              f"prior predictive, central {band:.0%}", curves)
+    handles += _mark_sources(ax, source_positions, colour)
     absent = np.mean(~np.isfinite(t))
     if absent > 0:
         handles.append(Patch(color="none", label=f"{absent:.0%} of prior arrivals absent (not shown; no line "

@@ -538,6 +538,16 @@ class _Fit:
     abscissa: np.ndarray | None = None  # (P,) what the figures plot picks against (distance or depth)
     abscissa_label: str = ""            # its axis label with unit
     abscissa_kind: str = "horizontal"   # see plots.pick_abscissa
+    source_positions: dict | None = None  # source name -> position along the line (kind "line_position")
+
+
+def _line_xy(picks):
+    """Horizontal coordinates (P, 2) of each pick's source and receiver (tables), or (None, None) inline."""
+    if picks.geometry != "tables":
+        return None, None
+    sxy = np.column_stack([picks.source_x, picks.source_y])[picks.source_index]
+    rxy = np.column_stack([picks.receiver_x, picks.receiver_y])[picks.receiver_index]
+    return sxy, rxy
 
 
 def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
@@ -575,13 +585,21 @@ def _fit(an: _Analysis, rng: np.random.Generator) -> _Fit | None:
     if problem.sphere:  # inline distances along the surface of the planet
         abscissa, label, kind = distance.copy(), f"{ARC_WORDS} [{an.length}]", "arc"
     else:
+        sxy, rxy = _line_xy(picks)
         abscissa, label, kind = pick_abscissa(distance, zs, zr, source=picks.source_id,
-                                              receiver=picks.receiver_id, length_unit=an.length)
+                                              receiver=picks.receiver_id, length_unit=an.length,
+                                              source_xy=sxy, receiver_xy=rxy)
+    source_positions = None
+    if kind == "line_position":
+        from .plots import line_positions
+
+        _, s_pos = line_positions(rxy, sxy)
+        source_positions = dict(zip(np.asarray(picks.source_id).astype(str), s_pos))
     outlier = problem.outlier_probability(theta)
     if outlier is not None:
         outlier = np.nanmean(outlier, axis=0)
     return _Fit(predicted, replicated, time[None, :] - predicted, sigma, origin, distance, outlier,
-                bool((~known).any()), int((~good).sum()), abscissa, label, kind)
+                bool((~known).any()), int((~good).sum()), abscissa, label, kind, source_positions)
 
 
 # =================================================================== sections
@@ -614,11 +632,14 @@ def _section_run(an: _Analysis, fit: _Fit | None = None) -> list:
     else:
         from .plots import pick_abscissa
 
+        sxy, rxy = _line_xy(picks)
         abscissa, _, kind = pick_abscissa(picks.distance, picks.source_depth, picks.receiver_depth,
-                                          source=picks.source_id, receiver=picks.receiver_id, length_unit=an.length)
+                                          source=picks.source_id, receiver=picks.receiver_id, length_unit=an.length,
+                                          source_xy=sxy, receiver_xy=rxy)
     span_words = {"arc": "arc distance range", "receiver_depth": "receiver depth range",
                   "source_depth": "source depth range",
-                  "straight_line": "straight-line distance range"}.get(kind, "distance range")
+                  "straight_line": "straight-line distance range",
+                  "line_position": "receiver position range (along the line)"}.get(kind, "distance range")
     keys = list(zip(picks.wave, picks.branch, picks.interface))
     for key in sorted(set(keys), key=lambda k: (k[0], k[1], int(k[2]))):
         sel = np.array([k == key for k in keys])
@@ -1135,6 +1156,8 @@ def _abscissa_words(fit: _Fit) -> str:
                             f"{_range_words(fit.distance)})",
             "straight_line": "the straight-line source–receiver distance (sources and receivers at depth)",
             "arc": "the distance along the surface of the planet (arc; epicentral angle on the top axis)",
+            "line_position": "the receiver position along the line, from its first receiver (triangles on the axis: "
+                             "source positions projected on the line)",
             }.get(fit.abscissa_kind, "horizontal source–receiver distance")
 
 
@@ -1194,6 +1217,7 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
                                          branch=picks.branch, replicated=fit.replicated - o_med,
                                          outlier_probability=fit.outlier, length_unit=an.length,
                                          x_label=fit.abscissa_label, planet_radius=radius,
+                                         source_positions=fit.source_positions,
                                          curves=_sphere_curves(problem, an.theta_fwd, fit, replicate=True))
         cap = (f"Picks (± 1 sd) against {_abscissa_words(fit)}, with the central 90 % of picks replicated from "
                f"{fit.predicted.shape[0]} posterior draws (prediction plus pick noise). Colour: source; marker: "
@@ -1237,6 +1261,7 @@ def _figures(an: _Analysis, fwd: dict, fit: _Fit | None) -> list:
         fig = plots.plot_prior_predictive(fit.abscissa, obs_tt, np.asarray(picks.sigma, dtype=float), pp,
                                           source=picks.source_id, wave=picks.wave, branch=picks.branch,
                                           length_unit=an.length, x_label=fit.abscissa_label,
+                                          source_positions=fit.source_positions,
                                           planet_radius=radius,
                                           curves=_sphere_curves(problem, fwd.get("prior_theta"), fit))
         cap = (f"Travel times of {pp.shape[0]} models drawn from the prior (central 95 %), with the picks, against "

@@ -388,3 +388,98 @@ def test_travel_time_figures_on_a_sphere(picks):
     sel = (source == "S1") & (wave == "P")
     shown = [ln for ln in fig.axes[0].lines if len(ln.get_xdata()) == sel.sum()]
     assert any(np.isnan(np.asarray(ln.get_ydata(), dtype=float)).any() for ln in shown)
+
+
+# ------------------------------------------------------------- line positions
+def _line_table_layout(t_receivers, t_sources, offsets=None):
+    """Per-pick coordinates of a line along the unit vector (3, 4)/5 from (10, 20) [m]."""
+    origin, along, across = np.array([10.0, 20.0]), np.array([0.6, 0.8]), np.array([-0.8, 0.6])
+    rec = origin + np.outer(t_receivers, along)
+    if offsets is not None:
+        rec = rec + np.outer(offsets, across)
+    src = origin + np.outer(t_sources, along)
+    si, ri = np.repeat(np.arange(len(t_sources)), len(t_receivers)), np.tile(np.arange(len(t_receivers)),
+                                                                             len(t_sources))
+    sxy, rxy = src[si], rec[ri]
+    dist = np.hypot(*(rxy - sxy).T)
+    return sxy, rxy, dist, np.array([f"s{i}" for i in si]), np.array([f"g{i}" for i in ri])
+
+
+def test_pick_abscissa_gives_receiver_position_along_a_straight_table_line():
+    # Hand-computed: receivers at (10, 20), (13, 24), (16, 28), (19, 32) [m] lie on the line through
+    # (10, 20) along (3, 4)/5 (3-4-5 right triangle: consecutive receivers 5 m apart), so their positions
+    # along the line from the first receiver are 0, 5, 10, 15 m; sources at (8.5, 18) and (22, 36) project
+    # to -2.5 and 20 m (orthogonal projection onto a line, analytic geometry).
+    sxy, rxy, dist, src, rec = _line_table_layout([0.0, 5.0, 10.0, 15.0], [-2.5, 20.0])
+    np.testing.assert_allclose(rxy[:4], [[10, 20], [13, 24], [16, 28], [19, 32]])
+    np.testing.assert_allclose(sxy[[0, 4]], [[8.5, 18], [22, 36]])
+    zeros = np.zeros(dist.size)
+    x, label, kind = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec, source_xy=sxy,
+                                         receiver_xy=rxy)
+    assert kind == "line_position" and label == "receiver position along the line [m]"
+    np.testing.assert_allclose(x, np.tile([0.0, 5.0, 10.0, 15.0], 2), atol=1e-9)
+    # forward and reverse shots share positions, unlike the source-receiver distance
+    assert not np.allclose(dist[:4], dist[4:]) and np.allclose(x[:4], x[4:])
+    r_pos, s_pos = plots.line_positions(rxy, sxy[[0, 4]])
+    np.testing.assert_allclose(s_pos, [-2.5, 20.0], atol=1e-9)
+    # the origin is the end of the line nearest the first receiver given: listed from the far end,
+    # positions run from that end (15 - t)
+    x_rev, _, _ = plots.pick_abscissa(dist[::-1], zeros, zeros, source=src[::-1], receiver=rec[::-1],
+                                      source_xy=sxy[::-1], receiver_xy=rxy[::-1])
+    np.testing.assert_allclose(x_rev, 15.0 - np.tile([0.0, 5.0, 10.0, 15.0], 2)[::-1], atol=1e-9)
+    # within the 1 % tolerance (0.1 m off a 15 m line) still a line; 0.5 m off is not
+    for off, expected in ((0.1, "line_position"), (0.5, "horizontal")):
+        sxy, rxy, dist, src, rec = _line_table_layout([0.0, 5.0, 10.0, 15.0], [-2.5, 20.0],
+                                                      offsets=[0.0, off, 0.0, 0.0])
+        _, label, kind = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec, source_xy=sxy,
+                                             receiver_xy=rxy)
+        assert kind == expected, off
+    assert label == "horizontal source–receiver distance [m]"
+
+
+def test_pick_abscissa_falls_back_to_distance_without_a_table_line():
+    sxy, rxy, dist, src, rec = _line_table_layout([0.0, 5.0, 10.0, 15.0], [-2.5, 20.0])
+    zeros = np.zeros(dist.size)
+    # inline geometry: no coordinates
+    x, label, kind = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec)
+    assert kind == "horizontal" and np.array_equal(x, dist)
+    # an unknown source epicentre (NaN) leaves no position along the line
+    s_nan = sxy.copy()
+    s_nan[0] = np.nan
+    _, _, kind = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec, source_xy=s_nan,
+                                     receiver_xy=rxy)
+    assert kind == "horizontal"
+    # stations spread over an area (a network)
+    net = np.array([[0.0, 0.0], [40.0, 0.0], [0.0, 30.0], [40.0, 30.0]])[np.tile(np.arange(4), 2)]
+    _, _, kind = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec, source_xy=sxy, receiver_xy=net)
+    assert kind == "horizontal"
+    # a borehole (receivers all at one x, y, down the hole) keeps its receiver-depth abscissa
+    depths = np.arange(1.0, 9.0)
+    hole = np.tile([[5.0, 5.0]], (8, 1))
+    x, _, kind = plots.pick_abscissa(np.full(8, 2.0), np.zeros(8), depths, source=["s"] * 8,
+                                     source_xy=np.tile([[3.0, 5.0]], (8, 1)), receiver_xy=hole)
+    assert kind == "receiver_depth" and np.array_equal(x, depths)
+    with pytest.raises(ValueError, match="one row per pick"):
+        plots.pick_abscissa(dist, zeros, zeros, source_xy=sxy[:3], receiver_xy=rxy)
+
+
+def test_line_figures_mark_sources_and_keep_overlapping_bands_apart():
+    sxy, rxy, dist, src, rec = _line_table_layout([0.0, 5.0, 10.0, 15.0], [-2.5, 20.0])
+    zeros = np.zeros(dist.size)
+    x, label, _ = plots.pick_abscissa(dist, zeros, zeros, source=src, receiver=rec, source_xy=sxy,
+                                      receiver_xy=rxy)
+    _, s_pos = plots.line_positions(rxy, sxy)
+    positions = dict(zip(src, s_pos))
+    rng = np.random.default_rng(3)
+    pred = dist / 600.0 * rng.normal(1.0, 0.1, (50, 1))  # direct wave t = d / v (synthetic)
+    for fn in (plots.plot_travel_time_fit, plots.plot_prior_predictive):
+        fig = fn(x, dist / 600.0, np.full(dist.size, 1e-3), pred, source=src, x_label=label,
+                 source_positions=positions)
+        ax = fig.axes[0]
+        assert fig.axes[-1 if fn is plots.plot_travel_time_fit else 0].get_xlabel() == label
+        marks = [ln for ln in ax.lines if ln.get_marker() == "^" and len(ln.get_xdata()) == 1]
+        assert sorted(float(m.get_xdata()[0]) for m in marks) == pytest.approx([-2.5, 20.0])
+        # bands: hatched, and any plain fill is so light that two overlapping stay near white
+        fills = [c for c in ax.collections if len(c.get_paths())]
+        assert {c.get_hatch() for c in fills} >= {"////", "\\\\\\\\"}
+        assert max(float(c.get_facecolor()[0][3]) for c in fills if c.get_facecolor().size) <= 0.1

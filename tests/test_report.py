@@ -711,3 +711,65 @@ def test_log_evidence_axis_turns_symmetric_log_for_far_worse_candidates():
     assert evidence_axis(SYMLOG_FROM_NATS)[0] == "linear"
     scale, limits, note = evidence_axis(15700.0)
     assert scale == "symlog" and limits == (-31400.0, SYMLOG_LINEAR_NATS) and "logarithmic" in note
+
+
+# ------------------------------------------------------------------ line survey with station tables
+@pytest.fixture(scope="module")
+def table_line(tmp_path_factory):
+    """Report of a short run on a synthetic straight line given by sources and receivers tables.
+
+    Eleven receivers 4 m apart and a shot 3 m before the first and 43 m after it, along the direction
+    (3, 4)/5 from (100, 200) (invented coordinates), so the line is not along an axis; the x labels and
+    source positions the figures get are recorded.
+    """
+    from invert import plots
+    from invert.run import run_inversion
+    from invert.synthetic import network
+
+    folder = tmp_path_factory.mktemp("table_line")
+    o, u = np.array([100.0, 200.0]), np.array([0.6, 0.8])
+    stations = [{"name": f"g{i + 1:02d}", "x": float(p[0]), "y": float(p[1])}
+                for i, p in enumerate(o + np.outer(2.0 + 4.0 * np.arange(11), u))]
+    events = [{"name": n, "x": float(p[0]), "y": float(p[1]), "depth": 0.0, "origin_time": 0.0}
+              for n, p in (("s1", o - 1.0 * u), ("s2", o + 45.0 * u))]
+    model = LayerModel.build(TRUE_MODEL["thickness"], TRUE_MODEL["vp"], vs=TRUE_MODEL["vs"])
+    network(model, {"kind": "network", "events": events, "stations": stations, "waves": ["P"], "sigma": 0.001,
+                    "hide_depth": False, "hide_origin_time": False}, np.random.default_rng(6), folder, "picks.csv",
+            "synthetic picks, invented straight line with station tables")
+    toml = (RUN_TOML.replace('picks = "picks.csv"\n', 'picks = "picks.csv"\nsources = "sources.csv"\n'
+                                                     'receivers = "receivers.csv"\n')
+            .replace("steps = 150", "steps = 60").replace("burn = 50", "burn = 20"))
+    (folder / "run.toml").write_text(toml)
+    out = run_inversion(folder / "run.toml", quiet=True, progress=False)
+    seen = {}
+
+    def recording(name):
+        original = getattr(plots, name)
+
+        def wrapper(*args, **kwargs):
+            fig = original(*args, **kwargs)
+            seen[name] = (kwargs.get("x_label"), kwargs.get("source_positions"), fig.axes[-1].get_xlabel()
+                          if name == "plot_travel_time_fit" else fig.axes[0].get_xlabel())
+            return fig
+        return wrapper
+
+    with pytest.MonkeyPatch.context() as mp:
+        for name in ("plot_travel_time_fit", "plot_prior_predictive"):
+            mp.setattr(plots, name, recording(name))
+        page = report.write_report(out.folder).read_text(encoding="utf-8")
+    return page, seen
+
+
+def test_table_line_plotted_against_receiver_position_along_the_line(table_line):
+    page, seen = table_line
+    assert set(seen) == {"plot_travel_time_fit", "plot_prior_predictive"}
+    for x_label, positions, drawn in seen.values():
+        assert x_label == drawn == "receiver position along the line [m]"
+        # shots 1 m before and 45 m after the point the receivers start 2 m from: -3 m and 43 m from the
+        # first receiver (distances along a straight line; the layout of this fixture)
+        assert positions == pytest.approx({"s1": -3.0, "s2": 43.0})
+    figures = _section(page, "figures")
+    assert "against the receiver position along the line" in figures
+    run = _section(page, "run")
+    assert "receiver position range (along the line) [m]" in run
+    assert _row(run, "P")[-1] == "0 – 40"
