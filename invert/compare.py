@@ -24,7 +24,6 @@ the disagreement is reported).
 
 from __future__ import annotations
 
-import csv
 import dataclasses
 import io
 import json
@@ -569,12 +568,9 @@ def _fmt(x, digits=3) -> str:
 
 
 def _csv_text(rows: list) -> str:
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=list(rows[0].keys()), lineterminator="\n")
-    writer.writeheader()
-    for r in rows:
-        writer.writerow({k: ("" if v is None else (f"{v:.8g}" if isinstance(v, float) else v)) for k, v in r.items()})
-    return buf.getvalue()
+    from .run import _csv
+
+    return _csv(rows, digits=8)
 
 
 def _comparison_markdown(title: str, rows: list, layer_rows: list, settings: EvidenceSettings, notes: list,

@@ -479,9 +479,12 @@ def _identity(u):
     return np.array(u, dtype=float)
 
 
-def _systematic_resample(weights: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """Indices of ~ESS-many equal-weight draws by systematic resampling (at least 1 per unit of weight*n)."""
-    n = weights.size
+def _systematic_resample(weights: np.ndarray, rng: np.random.Generator, count: int | None = None) -> np.ndarray:
+    """Indices of ``count`` (default: as many as weights) equal-weight draws by systematic resampling.
+
+    ``weights`` sum to 1; a draw is repeated only when its weight exceeds 1 / count.
+    """
+    n = weights.size if count is None else int(count)
     positions = (rng.random() + np.arange(n)) / n
     cum = np.cumsum(weights)
     cum[-1] = 1.0
@@ -642,9 +645,7 @@ def _resample_start(theta: np.ndarray, loglike: np.ndarray, dbeta: float, walker
         raise RuntimeError(f"only {int(ok.sum())} draws with a finite likelihood to start {walkers} walkers from")
     w = np.zeros(a.size)
     w[ok] = np.exp(a[ok] - np.max(a[ok]))
-    cum = np.cumsum(w / w.sum())
-    cum[-1] = 1.0
-    index = np.searchsorted(cum, (rng.random() + np.arange(walkers)) / walkers)
+    index = _systematic_resample(w / w.sum(), rng, walkers)
     return np.array(theta[rng.permutation(index)], dtype=float)
 
 

@@ -761,12 +761,14 @@ def summary_rows(idata, problem: Problem, report: ConvergenceReport) -> list[dic
     return rows
 
 
-def _csv(rows: list[dict]) -> str:
+def _csv(rows: list[dict], digits: int = 6) -> str:
+    """CSV text of ``rows`` (dicts with the same keys): floats to ``digits`` significant digits, None empty."""
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=list(rows[0].keys()), lineterminator="\n")
     writer.writeheader()
     for r in rows:
-        writer.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v)) for k, v in r.items()})
+        writer.writerow({k: ("" if v is None else (f"{v:.{digits}g}" if isinstance(v, float) else v))
+                         for k, v in r.items()})
     return buf.getvalue()
 
 

@@ -470,17 +470,23 @@ def _fill_checkpoint(f: h5py.File, settings: dict, initial: np.ndarray, target_s
         g.attrs["rng_cached_gaussian"] = float(rng[4])
 
 
-def _read_checkpoint(path: Path) -> dict:
-    """Read a checkpoint written by :func:`_write_checkpoint` (arrays and plain attributes only)."""
-    path = Path(path)
+def _open_checkpoint(path: Path):
+    """Open checkpoint ``path`` for reading (an h5py File) after checking it is one of ours."""
     try:
         f = h5py.File(path, "r")
     except OSError as exc:
         raise ValueError(f"cannot read checkpoint {path}: not a readable HDF5 file ({exc})") from None
-    with f:
+    if f.attrs.get("format") != CHECKPOINT_FORMAT:
+        f.close()
+        raise ValueError(f"cannot read checkpoint {path}: not a checkpoint of this program")
+    return f
+
+
+def _read_checkpoint(path: Path) -> dict:
+    """Read a checkpoint written by :func:`_write_checkpoint` (arrays and plain attributes only)."""
+    path = Path(path)
+    with _open_checkpoint(path) as f:
         try:
-            if f.attrs.get("format") != CHECKPOINT_FORMAT:
-                raise ValueError(f"cannot read checkpoint {path}: not a checkpoint of this program")
             version = int(f.attrs["format_version"])
             if version != CHECKPOINT_VERSION:
                 raise ValueError(f"cannot read checkpoint {path}: layout version {version}, "
@@ -532,14 +538,8 @@ def checkpoint_settings(path) -> dict:
     steps per ensemble, a list).
     """
     path = Path(path)
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise ValueError(f"cannot read checkpoint {path}: not a readable HDF5 file ({exc})") from None
-    with f:
+    with _open_checkpoint(path) as f:
         try:
-            if f.attrs.get("format") != CHECKPOINT_FORMAT:
-                raise ValueError(f"cannot read checkpoint {path}: not a checkpoint of this program")
             n_ens = int(f.attrs["n_ensembles"])
             parts = f.attrs.get("fingerprint_parts")
             return {"n_ensembles": n_ens, "n_walkers": int(f.attrs["n_walkers"]), "n_dim": int(f.attrs["n_dim"]),
